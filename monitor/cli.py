@@ -1,0 +1,244 @@
+"""The `comove` command: thin shells that load settings, call the pipeline, print results.
+
+Every command is registered with `@command`, so `--help`, the shared `--config` option and
+the error handling are written once. Errors are one line on stderr and exit code 1; usage
+errors exit 2 (argparse); a traceback is never shown to a user.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import json
+import sys
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from monitor import __version__
+from monitor.errors import ComoveError, IngestError
+from storage import StoreError
+
+Handler = Callable[[argparse.Namespace], int]
+
+
+@dataclass(frozen=True)
+class Command:
+    name: str
+    help: str
+    handler: Handler
+    configure: Callable[[argparse.ArgumentParser], None]
+    needs_config: bool = True
+
+
+COMMANDS: dict[str, Command] = {}
+
+
+def _no_arguments(parser: argparse.ArgumentParser) -> None:
+    return None
+
+
+def command(
+    name: str,
+    help: str,
+    arguments: Callable[[argparse.ArgumentParser], None] = _no_arguments,
+    *,
+    needs_config: bool = True,
+) -> Callable[[Handler], Handler]:
+    """Register the decorated function as the handler of `comove NAME`."""
+
+    def wrap(handler: Handler) -> Handler:
+        COMMANDS[name] = Command(name, help, handler, arguments, needs_config)
+        return handler
+
+    return wrap
+
+
+def _date(text: str) -> dt.date:
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a date (YYYY-MM-DD)") from None
+
+
+def load(args: argparse.Namespace) -> Any:
+    from monitor.config import load_settings
+
+    return load_settings(args.config)
+
+
+def print_frame(frame: pd.DataFrame, fmt: str = "table") -> None:
+    """Print a frame as an aligned table, CSV or JSON records."""
+    if fmt == "csv":
+        sys.stdout.write(frame.to_csv(index=False))
+    elif fmt == "json":
+        sys.stdout.write(frame.to_json(orient="records", date_format="iso", indent=1) + "\n")
+    elif frame.empty:
+        print("(none)")
+    else:
+        print(frame.to_string(index=False, na_rep="-"))
+
+
+# --- init -------------------------------------------------------------------------------
+
+
+@command("init", "Create the store (idempotent) and record the configured instruments.")
+def _init(args: argparse.Namespace) -> int:
+    from monitor.pipeline import init_store
+
+    settings = load(args)
+    store = init_store(settings)
+    print(f"store ready: {store.url}")
+    print(f"inbox: {settings.inbox}")
+    print(f"instruments configured: {len(settings.instruments)}")
+    return 0
+
+
+# --- ingest -----------------------------------------------------------------------------
+
+
+def _ingest_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("files", nargs="+", type=Path, metavar="FILE")
+    parser.add_argument("--format", choices=("auto", "long", "wide"), default="auto",
+                        help="layout: long = date,symbol,close[,source]; wide = date plus one "
+                             "column per symbol; auto decides from the header (default)")
+    parser.add_argument("--skip-bad", action="store_true",
+                        help="write the good rows and record the rejects, instead of "
+                             "refusing the whole file")
+
+
+@command("ingest", "Load closes from CSV files (.csv or .csv.gz), long or wide layout.",
+         _ingest_args)
+def _ingest(args: argparse.Namespace) -> int:
+    from monitor.pipeline import ingest_file, open_settings_store
+
+    settings = load(args)
+    store = open_settings_store(settings)
+    failed = 0
+    for path in args.files:
+        try:
+            report = ingest_file(store, settings, path, layout=args.format,
+                                 skip_bad=args.skip_bad)
+        except IngestError as exc:
+            for problem in exc.problems:
+                print(problem, file=sys.stderr)
+            print(f"Error: {exc}", file=sys.stderr)
+            failed += 1
+            continue
+        _print_ingest(report)
+    return 1 if failed else 0
+
+
+def _print_ingest(report: Any) -> None:
+    name = Path(report.file).name
+    if report.already_ingested:
+        print(f"{name}: already ingested as batch {report.batch_id}; nothing to do")
+        return
+    print(
+        f"{name}: batch {report.batch_id}: {report.rows_read} rows read, "
+        f"{report.closes_new} new closes, {report.closes_restated} restated, "
+        f"{report.closes_unchanged} unchanged, {report.rows_rejected} rejected"
+    )
+    for problem in report.problems:
+        print(f"  skipped: {problem}", file=sys.stderr)
+    for row in report.restatements.itertuples():
+        print(f"  restated: {row.symbol} on {row.date.date()}: {row.old_close:g} -> "
+              f"{row.new_close:g}")
+    if report.earliest_restated:
+        print(f"  earliest restated date: {report.earliest_restated} (later evaluations "
+              "recompute from it)")
+    for row in report.suspects.itertuples():
+        print(f"  suspect tick: {row.symbol} on {row.date.date()}: close {row.close:g} after "
+              f"{row.previous_close:g} (log return {row.log_return:+.3f}); accepted, please check")
+
+
+# --- instruments ------------------------------------------------------------------------
+
+
+def _instruments_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--format", choices=("table", "csv", "json"), default="table")
+
+
+@command("instruments", "List instruments with first and last date, closes and gaps.",
+         _instruments_args)
+def _instruments(args: argparse.Namespace) -> int:
+    from monitor.pipeline import instrument_summary, open_settings_store
+
+    store = open_settings_store(load(args))
+    print_frame(instrument_summary(store), args.format)
+    return 0
+
+
+# --- bench ------------------------------------------------------------------------------
+
+BENCHES = {
+    "ingest": "monitor.bench_ingest",
+    "engine": "monitor.bench_engine",
+    "digest": "monitor.bench_digest",
+}
+
+
+def _bench_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("what", choices=sorted(BENCHES), help="which benchmark to run")
+    parser.add_argument("rest", nargs=argparse.REMAINDER,
+                        help="options for that benchmark (--json, --quick)")
+
+
+@command("bench", "Measure speed and memory against the targets; prints a table (or --json).",
+         _bench_args, needs_config=False)
+def _bench(args: argparse.Namespace) -> int:
+    import importlib
+
+    module = importlib.import_module(BENCHES[args.what])
+    return int(module.main(args.rest))
+
+
+# --- the parser -------------------------------------------------------------------------
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="comove",
+        description="Correlation monitor for a market-risk desk: closes in, rolling and "
+                    "EWMA correlations, alerts and an evening digest out. A monitoring aid, "
+                    "not investment advice.",
+    )
+    parser.add_argument("--version", action="version", version=f"comove {__version__}")
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--config", metavar="PATH",
+                        help="settings file (default: $COMOVE_CONFIG, else ./comove.toml)")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for cmd in COMMANDS.values():
+        child = sub.add_parser(cmd.name, help=cmd.help, description=cmd.help,
+                               parents=[common] if cmd.needs_config else [])
+        cmd.configure(child)
+        child.set_defaults(handler=cmd.handler)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.handler(args))
+    except (ComoveError, StoreError) as exc:
+        print(f"Error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("Interrupted; every step already committed is kept.", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return 0
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, dt.date | dt.datetime):
+        return value.isoformat()
+    raise TypeError(type(value).__name__)
+
+
+def dumps(value: Any) -> str:
+    return json.dumps(value, default=_json_default, indent=1)

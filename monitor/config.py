@@ -1,0 +1,417 @@
+"""The settings file: one TOML file, declared section by section with defaults and help.
+
+Each section is a frozen dataclass whose fields carry their own type, default, help text and
+check (see `setting`). The loader, the error messages and the documentation are all derived
+from those declarations, so adding a key means adding one field. An unknown key is always
+an error that suggests the nearest valid key: a typo must never be silently ignored.
+
+Where the file is: `--config PATH`, else `$COMOVE_CONFIG`, else `./comove.toml`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import os
+import re
+import tomllib
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from monitor.errors import ConfigError
+
+DEFAULT_FILE = "comove.toml"
+ENV_VAR = "COMOVE_CONFIG"
+
+Check = Callable[[Any], str | None]
+"""Returns None when the value is fine, else what was expected (e.g. 'a number > 0')."""
+
+_REQUIRED: Any = dataclasses.MISSING
+
+
+def setting(
+    default: Any,
+    help: str,
+    *,
+    kind: type | tuple[type, ...] = str,
+    check: Check | None = None,
+    choices: tuple[str, ...] | None = None,
+    item: type | None = None,
+) -> Any:
+    """Declare one key: its default (`_REQUIRED` for none), help text, type and check."""
+    meta = {"help": help, "type": kind, "check": check, "choices": choices, "item": item}
+    if isinstance(default, list | tuple):
+        frozen = tuple(default)
+        return field(default_factory=lambda: frozen, metadata=meta)
+    return field(default=default, metadata=meta)
+
+
+def _positive(value: Any) -> str | None:
+    return None if value > 0 else "a number > 0"
+
+
+def _at_least(low: int) -> Check:
+    def check(value: Any) -> str | None:
+        return None if value >= low else f"an integer >= {low}"
+
+    return check
+
+
+def _timezone(value: Any) -> str | None:
+    try:
+        ZoneInfo(value)
+    except (ZoneInfoNotFoundError, ValueError):
+        return "an IANA time zone such as 'Europe/Berlin' or 'America/New_York'"
+    return None
+
+
+_SYMBOL = re.compile(r"^[^\s,;]{1,64}$")
+
+
+def _symbol(value: Any) -> str | None:
+    return None if _SYMBOL.match(value) else "1 to 64 characters without spaces, commas or ';'"
+
+
+@dataclass(frozen=True)
+class StoreSettings:
+    """[store]: where closes, alerts and runs are kept."""
+
+    url: str = setting(
+        "sqlite:///comove.sqlite",
+        "SQLAlchemy URL of the store. A relative SQLite path is resolved against the folder "
+        "of the settings file; PostgreSQL as postgresql://user@host:port/database.",
+    )
+
+
+@dataclass(frozen=True)
+class DeskSettings:
+    """[desk]: who the monitor works for."""
+
+    name: str = setting("Desk", "Name of the desk, shown in the digest and the pages.")
+    timezone: str = setting(
+        "UTC",
+        "IANA time zone of the desk; decides what 'today' is (closes dated later are refused).",
+        check=_timezone,
+    )
+
+
+@dataclass(frozen=True)
+class ReturnsSettings:
+    """[returns]: how closes become returns."""
+
+    kind: str = setting("log", "Return kind: log or simple.", choices=("log", "simple"))
+    horizon: int = setting(
+        1,
+        "Days per return. Above 1 gives non-overlapping multi-day returns, which lessens the "
+        "downward bias when instruments close in different time zones.",
+        kind=int,
+        check=_at_least(1),
+    )
+    fill_limit: int = setting(
+        0,
+        "Carry the last close forward over at most this many missing days (0: never; a "
+        "missing close then leaves that day's and the next day's return missing).",
+        kind=int,
+        check=_at_least(0),
+    )
+    suspect_move: float = setting(
+        0.25,
+        "A daily |log return| above this is accepted but reported as a suspect tick.",
+        kind=(int, float),
+        check=_positive,
+    )
+
+
+@dataclass(frozen=True)
+class SourcesSettings:
+    """[sources]: where closes come from."""
+
+    inbox: str = setting(
+        "inbox",
+        "Folder of CSV files (.csv or .csv.gz) the daily run collects; relative to the "
+        "settings file's folder.",
+    )
+    allow_new_symbols: bool = setting(
+        False,
+        "Accept closes for symbols not listed under [[instruments]] (they are added with "
+        "empty name and group). Ignored when no instruments are listed: then every symbol "
+        "is accepted.",
+        kind=bool,
+    )
+
+
+@dataclass(frozen=True)
+class InstrumentSettings:
+    """[[instruments]]: one table per monitored instrument."""
+
+    symbol: str = setting(_REQUIRED, "Code of the instrument as it appears in the CSV files.",
+                          check=_symbol)
+    name: str = setting("", "Readable name.")
+    group: str = setting("", "Group the instrument belongs to (rules and gauges use groups).")
+    currency: str = setting("", "Currency of the close.")
+    calendar: str = setting("", "Free note on the instrument's trading calendar or close time.")
+
+
+@dataclass(frozen=True)
+class Section:
+    """One section of the file: its dataclass and whether it is an array of tables."""
+
+    cls: type
+    array: bool = False
+    raw: bool = False  # handed on as plain dicts, validated by their own module (rules)
+
+
+SECTIONS: dict[str, Section] = {
+    "store": Section(StoreSettings),
+    "desk": Section(DeskSettings),
+    "returns": Section(ReturnsSettings),
+    "sources": Section(SourcesSettings),
+    "instruments": Section(InstrumentSettings, array=True),
+}
+"""Every section comove reads. Later features register theirs with `register_section`."""
+
+
+def register_section(name: str, section: Section) -> None:
+    SECTIONS[name] = section
+
+
+@dataclass(frozen=True)
+class Settings:
+    """The whole settings file, validated. `sections` holds one object per section name."""
+
+    path: Path | None
+    base_dir: Path
+    sections: Mapping[str, Any]
+
+    @property
+    def store(self) -> StoreSettings:
+        return self.sections["store"]  # type: ignore[no-any-return]
+
+    @property
+    def desk(self) -> DeskSettings:
+        return self.sections["desk"]  # type: ignore[no-any-return]
+
+    @property
+    def returns(self) -> ReturnsSettings:
+        return self.sections["returns"]  # type: ignore[no-any-return]
+
+    @property
+    def sources(self) -> SourcesSettings:
+        return self.sections["sources"]  # type: ignore[no-any-return]
+
+    @property
+    def instruments(self) -> tuple[InstrumentSettings, ...]:
+        return self.sections["instruments"]  # type: ignore[no-any-return]
+
+    def section(self, name: str) -> Any:
+        return self.sections[name]
+
+    @property
+    def inbox(self) -> Path:
+        return self.resolve_path(self.sources.inbox)
+
+    def resolve_path(self, value: str) -> Path:
+        path = Path(value).expanduser()
+        return path if path.is_absolute() else self.base_dir / path
+
+    @property
+    def store_url(self) -> str:
+        return resolve_store_url(self.store.url, self.base_dir)
+
+    @property
+    def groups(self) -> dict[str, list[str]]:
+        groups: dict[str, list[str]] = {}
+        for inst in self.instruments:
+            if inst.group:
+                groups.setdefault(inst.group, []).append(inst.symbol)
+        return groups
+
+    @property
+    def symbols(self) -> list[str]:
+        return [inst.symbol for inst in self.instruments]
+
+
+def resolve_store_url(url: str, base_dir: Path) -> str:
+    """Make a relative SQLite path absolute against `base_dir`; other URLs pass unchanged."""
+    prefix_match = re.match(r"^(sqlite(?:\+\w+)?:///)(.*)$", url)
+    if not prefix_match:
+        return url
+    prefix, rest = prefix_match.groups()
+    if rest in ("", ":memory:") or rest.startswith("/") or rest.startswith("file:"):
+        return url
+    path_part, sep, query = rest.partition("?")
+    absolute = (base_dir / Path(path_part).expanduser()).resolve()
+    return f"{prefix}{absolute}{sep}{query}"
+
+
+def _type_name(expected: type | tuple[type, ...]) -> str:
+    names = {str: "a string", int: "an integer", float: "a number", bool: "true or false",
+             list: "a list", tuple: "a list"}
+    if isinstance(expected, tuple):
+        if set(expected) == {int, float}:
+            return "a number"
+        return " or ".join(names.get(t, t.__name__) for t in expected)
+    return names.get(expected, expected.__name__)
+
+
+def _type_ok(value: Any, expected: type | tuple[type, ...]) -> bool:
+    kinds = expected if isinstance(expected, tuple) else (expected,)
+    if isinstance(value, bool) and bool not in kinds:
+        return False  # TOML true is not a number here
+    return isinstance(value, kinds)
+
+
+def _suggest(key: str, valid: list[str]) -> str:
+    near = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
+    if near:
+        return f"did you mean '{near[0]}'?"
+    return "valid keys: " + ", ".join(sorted(valid))
+
+
+def build_section(cls: type, raw: Any, path: str) -> Any:
+    """Validate one table against its dataclass; every error names the key path and value."""
+    if not isinstance(raw, dict):
+        raise ConfigError(f"{path}: expected a table, got {raw!r}")
+    fields = {f.name: f for f in dataclasses.fields(cls)}
+    for key in raw:
+        if key not in fields:
+            raise ConfigError(f"{path}.{key}: unknown key; {_suggest(key, list(fields))}")
+    values: dict[str, Any] = {}
+    for name, fld in fields.items():
+        meta = fld.metadata
+        if name not in raw:
+            if fld.default is dataclasses.MISSING and fld.default_factory is dataclasses.MISSING:
+                raise ConfigError(f"{path}.{name}: required key is missing ({meta['help']})")
+            continue
+        value = raw[name]
+        expected = meta["type"]
+        if not _type_ok(value, expected):
+            raise ConfigError(f"{path}.{name}: {value!r} is not {_type_name(expected)}")
+        if isinstance(value, list):
+            item = meta.get("item")
+            for i, element in enumerate(value):
+                if item is not None and not _type_ok(element, item):
+                    raise ConfigError(
+                        f"{path}.{name}[{i}]: {element!r} is not {_type_name(item)}"
+                    )
+            value = tuple(value)
+        if meta["choices"] and value not in meta["choices"]:
+            raise ConfigError(
+                f"{path}.{name}: {value!r} is not one of " + ", ".join(meta["choices"])
+            )
+        check = meta["check"]
+        if check is not None:
+            problem = check(value)
+            if problem:
+                raise ConfigError(f"{path}.{name}: {value!r} is not {problem}")
+        values[name] = value
+    return cls(**values)
+
+
+def parse_settings(data: Mapping[str, Any], *, path: Path | None = None,
+                   base_dir: Path | None = None) -> Settings:
+    """Validate an already parsed TOML document."""
+    where = path.name if path else "settings"
+    for key in data:
+        if key not in SECTIONS:
+            raise ConfigError(f"{where}: [{key}]: unknown section; {_suggest(key, list(SECTIONS))}")
+    sections: dict[str, Any] = {}
+    for name, section in SECTIONS.items():
+        raw = data.get(name, [] if section.array else {})
+        if section.array:
+            if not isinstance(raw, list):
+                raise ConfigError(f"{where}: {name}: expected [[{name}]] tables, got {raw!r}")
+            if section.raw:
+                for i, table in enumerate(raw):
+                    if not isinstance(table, dict):
+                        raise ConfigError(f"{where}: {name}[{i}]: expected a table")
+                sections[name] = tuple(dict(t) for t in raw)
+            else:
+                sections[name] = tuple(
+                    build_section(section.cls, table, f"{name}[{i}]")
+                    for i, table in enumerate(raw)
+                )
+        elif section.raw:
+            sections[name] = dict(raw)
+        else:
+            sections[name] = build_section(section.cls, raw, name)
+    settings = Settings(
+        path=path,
+        base_dir=base_dir or (path.parent.resolve() if path else Path.cwd()),
+        sections=sections,
+    )
+    _check_instruments(settings.instruments)
+    return settings
+
+
+def _check_instruments(items: tuple[InstrumentSettings, ...]) -> None:
+    seen: dict[str, int] = {}
+    for i, inst in enumerate(items):
+        if inst.symbol in seen:
+            raise ConfigError(
+                f"instruments[{i}].symbol: {inst.symbol!r} is already listed as "
+                f"instruments[{seen[inst.symbol]}]"
+            )
+        seen[inst.symbol] = i
+
+
+def find_settings_file(explicit: str | os.PathLike[str] | None = None,
+                       environ: Mapping[str, str] | None = None) -> Path:
+    """`--config PATH`, else `$COMOVE_CONFIG`, else `./comove.toml`."""
+    env = os.environ if environ is None else environ
+    if explicit:
+        return Path(explicit)
+    if env.get(ENV_VAR):
+        return Path(env[ENV_VAR])
+    return Path(DEFAULT_FILE)
+
+
+def load_settings(explicit: str | os.PathLike[str] | None = None,
+                  environ: Mapping[str, str] | None = None) -> Settings:
+    path = find_settings_file(explicit, environ)
+    if not path.is_file():
+        raise ConfigError(
+            f"settings file {path} not found (give --config PATH or set {ENV_VAR})"
+        )
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from None
+    return parse_settings(data, path=path.resolve())
+
+
+@dataclass(frozen=True)
+class KeyDoc:
+    """One documented key, for the README reference and `comove config keys`."""
+
+    path: str
+    type: str
+    default: str
+    help: str
+
+
+def documented_keys() -> list[KeyDoc]:
+    """Every key of every structured section, derived from the declarations."""
+    docs: list[KeyDoc] = []
+    for name, section in SECTIONS.items():
+        if section.raw:
+            continue
+        prefix = f"[[{name}]]" if section.array else f"[{name}]"
+        for fld in dataclasses.fields(section.cls):
+            meta = fld.metadata
+            if fld.default is not dataclasses.MISSING:
+                default = repr(fld.default)
+            elif fld.default_factory is not dataclasses.MISSING:
+                default = repr(list(fld.default_factory()))
+            else:
+                default = "(required)"
+            kind = _type_name(meta["type"])
+            if meta["choices"]:
+                kind = " | ".join(meta["choices"])
+            docs.append(KeyDoc(f"{prefix} {fld.name}", kind, default, meta["help"]))
+    return docs

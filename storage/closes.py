@@ -1,0 +1,297 @@
+"""Instruments, closes, restatements, suspect ticks and ingest batches.
+
+Every function that writes takes a Connection from `Store.begin()`, so a caller can put a
+whole file's worth of changes into one transaction: all of it lands, or none of it.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import Connection, String, and_, bindparam, cast, func, select, update
+
+from storage.schema import (
+    close_revisions,
+    closes,
+    ingest_batches,
+    instruments,
+    suspect_ticks,
+)
+
+
+@dataclass(frozen=True)
+class InstrumentRow:
+    symbol: str
+    name: str = ""
+    group: str = ""
+    currency: str = ""
+    calendar: str = ""
+
+
+def sync_instruments(conn: Connection, items: Iterable[InstrumentRow]) -> None:
+    """Insert or update the listed instruments (symbols never disappear: closes refer to them)."""
+    existing = {row.symbol: row for row in conn.execute(select(instruments)).all()}
+    for item in items:
+        values = {"name": item.name, "group_name": item.group, "currency": item.currency,
+                  "calendar": item.calendar}
+        old = existing.get(item.symbol)
+        if old is None:
+            conn.execute(instruments.insert().values(symbol=item.symbol, **values))
+        elif (old.name, old.group_name, old.currency, old.calendar) != tuple(values.values()):
+            conn.execute(
+                instruments.update().where(instruments.c.symbol == item.symbol).values(**values)
+            )
+
+
+def ensure_symbols(conn: Connection, symbols: Iterable[str]) -> None:
+    """Add bare instrument rows for symbols the store does not know yet."""
+    known = set(conn.execute(select(instruments.c.symbol)).scalars())
+    missing = sorted(set(symbols) - known)
+    if missing:
+        conn.execute(instruments.insert(), [{"symbol": s, "name": "", "group_name": "",
+                                             "currency": "", "calendar": ""} for s in missing])
+
+
+def list_instruments(conn: Connection) -> list[InstrumentRow]:
+    rows = conn.execute(select(instruments).order_by(instruments.c.symbol)).all()
+    return [InstrumentRow(r.symbol, r.name, r.group_name, r.currency, r.calendar) for r in rows]
+
+
+def batch_for_sha(conn: Connection, sha256: str) -> int | None:
+    """The id of an accepted batch with these exact bytes, if any."""
+    return conn.execute(
+        select(ingest_batches.c.id)
+        .where(ingest_batches.c.sha256 == sha256, ingest_batches.c.status != "rejected")
+        .order_by(ingest_batches.c.id)
+        .limit(1)
+    ).scalar()
+
+
+def read_closes_long(
+    conn: Connection,
+    symbols: Sequence[str] | None = None,
+    start: dt.date | None = None,
+    end: dt.date | None = None,
+) -> pd.DataFrame:
+    """Closes as a long frame (symbol, date as datetime64, close), sorted by symbol and date."""
+    # Dates come back as text and are parsed in one vectorised call: per-row date objects
+    # would dominate the time of reading a ten-year panel.
+    query = select(closes.c.symbol, cast(closes.c.date, String), closes.c.close)
+    conditions = []
+    if symbols is not None:
+        if not symbols:
+            return pd.DataFrame({"symbol": pd.Series(dtype=str),
+                                 "date": pd.Series(dtype="datetime64[ns]"),
+                                 "close": pd.Series(dtype=float)})
+        if len(symbols) <= 500:
+            conditions.append(closes.c.symbol.in_(list(symbols)))
+    if start is not None:
+        conditions.append(closes.c.date >= start)
+    if end is not None:
+        conditions.append(closes.c.date <= end)
+    if conditions:
+        query = query.where(and_(*conditions))
+    rows = conn.execute(query).all()
+    frame = pd.DataFrame(rows, columns=["symbol", "date", "close"])
+    if symbols is not None and len(symbols) > 500:
+        frame = frame.loc[frame["symbol"].isin(set(symbols))]
+    frame["date"] = pd.to_datetime(frame["date"].astype(str).str.slice(0, 10), format="%Y-%m-%d")
+    frame["close"] = frame["close"].astype("float64")
+    frame["symbol"] = frame["symbol"].astype(str)
+    return frame.sort_values(["symbol", "date"], kind="stable").reset_index(drop=True)
+
+
+def read_panel(
+    conn: Connection,
+    symbols: Sequence[str] | None = None,
+    start: dt.date | None = None,
+    end: dt.date | None = None,
+) -> pd.DataFrame:
+    """Closes as a panel: DatetimeIndex `date` (every date any listed symbol has a close)
+    x one column per symbol, NaN where a symbol has no close that day."""
+    long = read_closes_long(conn, symbols, start, end)
+    panel = long.pivot(index="date", columns="symbol", values="close")
+    panel.columns.name = None
+    if symbols is not None:
+        panel = panel.reindex(columns=list(symbols))
+    return panel.sort_index()
+
+
+@dataclass(frozen=True)
+class BatchWrite:
+    """What one file changed in the store."""
+
+    batch_id: int
+    closes_new: int
+    closes_restated: int
+    closes_unchanged: int
+    earliest_restated: dt.date | None
+    restatements: pd.DataFrame  # symbol, date, old_close, new_close
+    suspects: pd.DataFrame  # symbol, date, close, previous_close, log_return
+
+
+def insert_batch(
+    conn: Connection,
+    *,
+    file_name: str,
+    sha256: str,
+    rows_read: int,
+    rows_accepted: int,
+    rows_rejected: int,
+    status: str,
+    problems: Sequence[str],
+    now: dt.datetime,
+) -> int:
+    result = conn.execute(
+        ingest_batches.insert().values(
+            file_name=file_name, sha256=sha256, rows_read=rows_read,
+            rows_accepted=rows_accepted, rows_rejected=rows_rejected, closes_new=0,
+            closes_restated=0, status=status, problems="\n".join(problems), ingested_at=now,
+        )
+    )
+    key = result.inserted_primary_key
+    assert key is not None
+    return int(key[0])
+
+
+def diff_closes(existing: pd.DataFrame, new: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Split `new` (symbol, date, close, source) into closes not stored yet and restatements
+    (a different close for a stored date: symbol, date, old_close, new_close, source)."""
+    merged = new.merge(existing[["symbol", "date", "close"]].rename(columns={"close": "old"}),
+                       on=["symbol", "date"], how="left")
+    is_new = merged["old"].isna().to_numpy()
+    changed = ~is_new & (merged["close"].to_numpy() != merged["old"].to_numpy())
+    fresh = merged.loc[is_new, ["symbol", "date", "close", "source"]]
+    restated = merged.loc[changed, ["symbol", "date", "old", "close", "source"]].rename(
+        columns={"old": "old_close", "close": "new_close"}
+    )
+    return fresh.reset_index(drop=True), restated.reset_index(drop=True)
+
+
+def _dates(values: pd.Series) -> list[dt.date]:
+    return [ts.date() for ts in pd.to_datetime(values)]
+
+
+def write_closes(
+    conn: Connection,
+    batch_id: int,
+    file_name: str,
+    fresh: pd.DataFrame,
+    restated: pd.DataFrame,
+    suspects: pd.DataFrame,
+    now: dt.datetime,
+) -> None:
+    """Insert new closes, apply restatements with their audit rows, record suspect ticks."""
+    if not fresh.empty:
+        conn.execute(
+            closes.insert(),
+            [
+                {"symbol": s, "date": d, "close": float(c), "source": src, "batch_id": batch_id}
+                for s, d, c, src in zip(
+                    fresh["symbol"].tolist(), _dates(fresh["date"]),
+                    fresh["close"].to_numpy(np.float64).tolist(), fresh["source"].tolist(),
+                    strict=True,
+                )
+            ],
+        )
+    if not restated.empty:
+        params = [
+            {"b_symbol": s, "b_date": d, "b_close": float(new), "b_source": src,
+             "b_batch": batch_id}
+            for s, d, new, src in zip(
+                restated["symbol"].tolist(), _dates(restated["date"]),
+                restated["new_close"].tolist(), restated["source"].tolist(), strict=True,
+            )
+        ]
+        conn.execute(
+            update(closes)
+            .where(closes.c.symbol == bindparam("b_symbol"), closes.c.date == bindparam("b_date"))
+            .values(close=bindparam("b_close"), source=bindparam("b_source"),
+                    batch_id=bindparam("b_batch")),
+            params,
+        )
+        write_revisions(conn, batch_id, file_name, restated, now)
+    if not suspects.empty:
+        seen = {
+            (r.symbol, r.date, r.close)
+            for r in conn.execute(select(suspect_ticks.c.symbol, suspect_ticks.c.date,
+                                         suspect_ticks.c.close))
+        }
+        rows = [
+            {"symbol": s, "date": d, "close": float(c), "previous_close": float(p),
+             "log_return": float(lr), "batch_id": batch_id}
+            for s, d, c, p, lr in zip(
+                suspects["symbol"].tolist(), _dates(suspects["date"]),
+                suspects["close"].tolist(), suspects["previous_close"].tolist(),
+                suspects["log_return"].tolist(), strict=True,
+            )
+            if (s, d, float(c)) not in seen
+        ]
+        if rows:
+            conn.execute(suspect_ticks.insert(), rows)
+
+
+def write_revisions(conn: Connection, batch_id: int, file_name: str, restated: pd.DataFrame,
+                    now: dt.datetime) -> None:
+    conn.execute(
+        close_revisions.insert(),
+        [
+            {"symbol": s, "date": d, "old_close": float(o), "new_close": float(n),
+             "source_file": file_name, "batch_id": batch_id, "revised_at": now}
+            for s, d, o, n in zip(
+                restated["symbol"].tolist(), _dates(restated["date"]),
+                restated["old_close"].tolist(), restated["new_close"].tolist(), strict=True,
+            )
+        ],
+    )
+
+
+def finish_batch(conn: Connection, batch_id: int, *, closes_new: int, closes_restated: int,
+                 earliest_restated: dt.date | None) -> None:
+    conn.execute(
+        ingest_batches.update()
+        .where(ingest_batches.c.id == batch_id)
+        .values(closes_new=closes_new, closes_restated=closes_restated,
+                earliest_restated=earliest_restated)
+    )
+
+
+@dataclass(frozen=True)
+class BatchRow:
+    id: int
+    file_name: str
+    sha256: str
+    rows_read: int
+    rows_accepted: int
+    rows_rejected: int
+    closes_new: int
+    closes_restated: int
+    earliest_restated: dt.date | None
+    status: str
+    problems: str
+    ingested_at: dt.datetime
+
+
+def list_batches(conn: Connection) -> list[BatchRow]:
+    rows = conn.execute(select(ingest_batches).order_by(ingest_batches.c.id)).all()
+    return [BatchRow(**row._mapping) for row in rows]
+
+
+def count_closes(conn: Connection) -> int:
+    return int(conn.execute(select(func.count()).select_from(closes)).scalar() or 0)
+
+
+def list_revisions(conn: Connection, since: dt.date | None = None) -> pd.DataFrame:
+    query = select(close_revisions).order_by(close_revisions.c.id)
+    if since is not None:
+        query = query.where(close_revisions.c.date >= since)
+    return pd.DataFrame(conn.execute(query).all(), columns=list(close_revisions.c.keys()))
+
+
+def list_suspects(conn: Connection) -> pd.DataFrame:
+    query = select(suspect_ticks).order_by(suspect_ticks.c.date, suspect_ticks.c.symbol)
+    return pd.DataFrame(conn.execute(query).all(), columns=list(suspect_ticks.c.keys()))
