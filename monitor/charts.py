@@ -174,8 +174,10 @@ def alert_history_chart(
     if clear_level is not None and np.isfinite(clear_level):
         axes.axhline(clear_level, color=CLEAR, linewidth=0.9, linestyle=":", label="clears at")
     if start is not None:
+        # matplotlib's date converter turns the datetime64 into its float axis units.
         axes.axvline(
-            np.datetime64(start, "D"), color=START, linewidth=0.9, label="alert start"
+            np.datetime64(start, "D"),  # type: ignore[arg-type]
+            color=START, linewidth=0.9, label="alert start",
         )
     axes.set_ylim(-1.05, 1.05)
     axes.legend(loc="lower left", fontsize=6, frameon=False, ncol=5)

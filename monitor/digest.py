@@ -735,6 +735,19 @@ def _build_charts(
         )
         add(f"alert-{index}", f"alert-{index:02d}", chart, _alert_alt(alert))
 
+    for index, basket in enumerate(ctx.baskets, start=1):
+        if not basket.history_dates:
+            continue
+        chart = charts.basket_history_chart(
+            basket.history_dates, basket.history_values, title=f"{basket.group}: average"
+        )
+        add(
+            f"basket-{index}", f"group-{index:02d}-{_slug(basket.group)}-average", chart,
+            f"Average pairwise correlation of {basket.group} over "
+            f"{len(basket.history_dates)} days: now {format_corr(basket.average_now)}, "
+            f"{ctx.parameters.basket_days} days earlier {format_corr(basket.average_before)}.",
+        )
+
     tables: list[_MatrixTable] = []
     attachments: list[DigestAttachment] = []
     for index, heatmap in enumerate(ctx.heatmaps, start=1):
@@ -774,18 +787,6 @@ def _build_charts(
         )
         tables.append(_MatrixTable(heatmap.group, ordered, rows, key, csv_name, note))
 
-    for index, basket in enumerate(ctx.baskets, start=1):
-        if not basket.history_dates:
-            continue
-        chart = charts.basket_history_chart(
-            basket.history_dates, basket.history_values, title=f"{basket.group}: average"
-        )
-        add(
-            f"basket-{index}", f"group-{index:02d}-{_slug(basket.group)}-average", chart,
-            f"Average pairwise correlation of {basket.group} over "
-            f"{len(basket.history_dates)} days: now {format_corr(basket.average_now)}, "
-            f"{ctx.parameters.basket_days} days earlier {format_corr(basket.average_before)}.",
-        )
     return images, by_key, tables, attachments
 
 
@@ -842,7 +843,7 @@ def _mime_body(rendered: RenderedDigest) -> EmailMessage:
     message["Subject"] = rendered.subject
     message.set_content(rendered.text, subtype="plain", charset="utf-8")
     message.add_alternative(rendered.html_for_email, subtype="html", charset="utf-8")
-    html_part = cast(EmailMessage, message.get_payload()[1])
+    html_part = cast(list[EmailMessage], message.get_payload())[1]
     for image in rendered.images:
         html_part.add_related(
             image.png, maintype="image", subtype="png", cid=f"<{image.cid}>",
