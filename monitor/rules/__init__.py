@@ -1,0 +1,54 @@
+"""The desk's alert rules: configuration, targets and vectorised daily conditions.
+
+Pure: numpy in, arrays and dataclasses out; no storage, clock or disk. See
+:mod:`monitor.rules.inputs` for how the pipeline feeds one day to the rules.
+"""
+
+from __future__ import annotations
+
+from monitor.rules.base import Rule
+from monitor.rules.basket import BasketRule
+from monitor.rules.inputs import Condition, DayInputs, MeasureDay
+from monitor.rules.jump import JumpRule
+from monitor.rules.level import LevelRule
+from monitor.rules.params import MeasureSpec, Param
+from monitor.rules.registry import (
+    RULE_KINDS,
+    build_rules,
+    lags_needed,
+    measures_needed,
+    pairs_needed,
+    rule_parameters,
+)
+from monitor.rules.shift import ShiftRule, fisher_difference, two_sided_p
+from monitor.rules.sign import SignRule
+from monitor.rules.stale import StaleRule
+from monitor.rules.targets import GroupTargets, PairLayout, PairTargets, SymbolTargets, Targets
+
+__all__ = [
+    "RULE_KINDS",
+    "BasketRule",
+    "Condition",
+    "DayInputs",
+    "GroupTargets",
+    "JumpRule",
+    "LevelRule",
+    "MeasureDay",
+    "MeasureSpec",
+    "PairLayout",
+    "PairTargets",
+    "Param",
+    "Rule",
+    "ShiftRule",
+    "SignRule",
+    "StaleRule",
+    "SymbolTargets",
+    "Targets",
+    "build_rules",
+    "fisher_difference",
+    "lags_needed",
+    "measures_needed",
+    "pairs_needed",
+    "rule_parameters",
+    "two_sided_p",
+]

@@ -1,0 +1,235 @@
+"""One day's inputs to the rules and the condition arrays a rule returns.
+
+How the pipeline feeds the rules
+--------------------------------
+Before the run, the pipeline asks the rules what they read
+(:func:`monitor.rules.registry.measures_needed`, ``lags_needed``, ``pairs_needed``):
+
+* ``measures_needed(rules)`` — canonical measure texts (``rolling:63``, ``ewma:hl=21``);
+  the engine is run once per text.
+* ``pairs_needed(rules)`` — the union (P_all, 2) of every pair a rule reads, ``i < j``;
+  the engine may compute exactly these, or full (N, N) matrices.
+* ``lags_needed(rules)`` — ``(measure text, lag)`` couples: the value of that measure
+  ``lag`` business days before the day being evaluated (``jump`` needs ``days`` ago,
+  an ``adjacent`` shift needs the window that ended ``window`` days ago). The pipeline keeps
+  a ring buffer of ``max(lag) + 1`` days of engine output per measure.
+
+Then for every business day it builds one :class:`DayInputs`:
+
+* ``measures[text]`` — a :class:`MeasureDay` whose arrays are either (P_all,) aligned to
+  ``layout.pairs`` (one :class:`~monitor.rules.targets.PairLayout` built once per run and
+  reused every day) or full (N, N) matrices (``layout`` may then be None).
+* ``lagged[(text, lag)]`` — the same, as it stood ``lag`` business days earlier; before the
+  history is that long, pass :meth:`MeasureDay.missing` (all NaN), never leave it out.
+* ``days_without_close`` / ``days_unchanged`` (N,) — for ``stale`` rules: business days
+  since each instrument's last new close, and business days its close has not changed
+  (NaN for an instrument with no close yet).
+
+A missing key is a wiring error and raises ``KeyError`` naming it. Basket averages are not
+an input: a basket rule averages its group's pairs from ``measures`` itself.
+"""
+
+from __future__ import annotations
+
+import datetime
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import TypeVar
+
+import numpy as np
+import numpy.typing as npt
+
+from monitor._typing import Float1D
+from monitor.rules.targets import IntArray, PairLayout
+
+BoolArray = npt.NDArray[np.bool_]
+_Item = TypeVar("_Item", bound=np.generic)
+
+
+@dataclass(frozen=True)
+class MeasureDay:
+    """One measure on one day, for every computed pair.
+
+    Attributes
+    ----------
+    value : float array (P_all,) or (N, N)
+        Correlation in [-1, 1]; NaN where it cannot be computed.
+    n : float array, same shape
+        Observation count, or Kish effective count for EWMA.
+    low, high : float array, same shape
+        Confidence band around ``value``; NaN where not available.
+    stale : bool array, same shape
+        Zero-variance window (``value`` is then NaN).
+    """
+
+    value: Float1D
+    n: Float1D
+    low: Float1D
+    high: Float1D
+    stale: BoolArray
+
+    @classmethod
+    def missing(cls, shape: int | tuple[int, ...]) -> MeasureDay:
+        """All-NaN stand-in for a day the history does not reach yet."""
+        nan = np.broadcast_to(np.float64(np.nan), shape)
+        return cls(value=nan, n=nan, low=nan, high=nan, stale=np.broadcast_to(False, shape))
+
+    def take(self, pairs: IntArray, layout: PairLayout | None) -> MeasureDay:
+        """The rows of ``pairs`` (M, 2): arrays (M,).
+
+        Raises
+        ------
+        ValueError
+            Per-pair arrays without a layout, or a pair missing from the layout.
+        """
+        if self.value.ndim == 2:
+            # (N, N) matrices are C-contiguous, so ravel is a view and i*N + j its index.
+            flat = pairs[:, 0] * self.value.shape[1] + pairs[:, 1]
+            return self._pick(flat, matrix=True)
+        if layout is None:
+            raise ValueError("per-pair measure arrays need DayInputs.layout")
+        rows = layout.positions(pairs)
+        if rows is None:
+            return self
+        return self._pick(rows, matrix=False)
+
+    def _pick(self, rows: IntArray, *, matrix: bool) -> MeasureDay:
+        def pick(array: npt.NDArray[_Item]) -> npt.NDArray[_Item]:
+            return np.take(np.ravel(array) if matrix else array, rows)
+
+        return MeasureDay(
+            value=pick(self.value),
+            n=pick(self.n),
+            low=pick(self.low),
+            high=pick(self.high),
+            stale=pick(self.stale),
+        )
+
+
+@dataclass(frozen=True)
+class DayInputs:
+    """Everything the rules read for one business day (see the module docstring).
+
+    Attributes
+    ----------
+    date : datetime.date
+        The business day evaluated.
+    measures : mapping of str to MeasureDay
+        Keyed by canonical measure text.
+    layout : PairLayout or None
+        The pair list per-pair arrays follow; None when all arrays are (N, N).
+    lagged : mapping of (str, int) to MeasureDay
+        ``(measure text, lag)`` -> the measure ``lag`` business days earlier.
+    days_without_close, days_unchanged : float array (N,) or None
+        Inputs of ``stale`` rules; NaN for an instrument with no close yet.
+    """
+
+    date: datetime.date
+    measures: Mapping[str, MeasureDay]
+    layout: PairLayout | None = None
+    lagged: Mapping[tuple[str, int], MeasureDay] = field(default_factory=dict)
+    days_without_close: Float1D | None = None
+    days_unchanged: Float1D | None = None
+
+    def measure(self, text: str, pairs: IntArray) -> MeasureDay:
+        """Measure ``text`` today at ``pairs`` (M, 2); KeyError when not supplied."""
+        if text not in self.measures:
+            raise KeyError(f"DayInputs.measures has no {text!r}")
+        return self.measures[text].take(pairs, self.layout)
+
+    def lagged_measure(self, text: str, lag: int, pairs: IntArray) -> MeasureDay:
+        """Measure ``text`` ``lag`` business days ago at ``pairs``; KeyError when absent."""
+        if (text, lag) not in self.lagged:
+            raise KeyError(f"DayInputs.lagged has no ({text!r}, {lag})")
+        return self.lagged[(text, lag)].take(pairs, self.layout)
+
+
+def _filled(values: npt.ArrayLike | None, size: int) -> Float1D:
+    """A (size,) float view: NaN when None, a read-only broadcast for a scalar."""
+    if values is None:
+        return np.broadcast_to(np.float64(np.nan), (size,))
+    array = np.asarray(values, dtype=np.float64)
+    return np.broadcast_to(array, (size,)) if array.ndim == 0 else array
+
+
+@dataclass(frozen=True)
+class Condition:
+    """What one rule found today, one entry per target of the rule (P_rule,).
+
+    Attributes
+    ----------
+    breach : bool array
+        Beyond the opening level today.
+    clear : bool array
+        Past the clearing level today, i.e. safe; never True where ``breach`` is.
+    known : bool array
+        The condition could be evaluated. Where False (NaN inputs) both ``breach`` and
+        ``clear`` are False: an open alert stays open and a breach streak neither grows
+        nor breaks.
+    value : float array
+        The measure's value today (basket: the group average; stale: days without a fresh
+        close).
+    level : float array
+        The opening level (level, basket), z threshold (shift), ``delta`` (jump),
+        0 (sign), ``days`` (stale).
+    low, high, n : float array
+        Confidence band and observation count of ``value``; NaN where not relevant.
+    z, p : float array
+        Shift statistic and its two-sided p-value; NaN for other kinds.
+    reference : float array
+        What ``value`` is compared against: the long-window or previous-window correlation
+        (shift), the value ``days`` ago (jump); NaN for other kinds.
+    excess : float array
+        How far beyond the opening level, positive when breached; the alert book keeps the
+        value at the largest excess as the alert's peak.
+    """
+
+    breach: BoolArray
+    clear: BoolArray
+    known: BoolArray
+    value: Float1D
+    level: Float1D
+    low: Float1D
+    high: Float1D
+    n: Float1D
+    z: Float1D
+    p: Float1D
+    reference: Float1D
+    excess: Float1D
+
+    @classmethod
+    def build(
+        cls,
+        *,
+        breach: BoolArray,
+        clear: BoolArray,
+        known: BoolArray,
+        value: Float1D,
+        level: npt.ArrayLike,
+        excess: Float1D,
+        low: npt.ArrayLike | None = None,
+        high: npt.ArrayLike | None = None,
+        n: npt.ArrayLike | None = None,
+        z: npt.ArrayLike | None = None,
+        p: npt.ArrayLike | None = None,
+        reference: npt.ArrayLike | None = None,
+    ) -> Condition:
+        """Assemble a condition, filling what is not relevant with NaN (no copies)."""
+        size = value.shape[0]
+        return cls(
+            breach=breach,
+            clear=clear,
+            known=known,
+            value=value,
+            level=_filled(level, size),
+            low=_filled(low, size),
+            high=_filled(high, size),
+            n=_filled(n, size),
+            z=_filled(z, size),
+            p=_filled(p, size),
+            reference=_filled(reference, size),
+            excess=excess,
+        )
+
+    def __len__(self) -> int:
+        return int(self.value.shape[0])

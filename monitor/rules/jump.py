@@ -1,0 +1,99 @@
+"""The ``jump`` rule: a pair's correlation moved by at least ``delta`` over ``days`` days.
+
+The move is value_t - value_{t-days} (the pipeline supplies the lagged value, see
+:mod:`monitor.rules.inputs`). ``direction`` picks rises (``up``), falls (``down``) or
+both (``either``, the default). An alert clears once the move over ``days`` is back under
+half of ``delta`` in the watched direction, a dead-band so that a move hovering at
+``delta`` does not flap.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar, Literal, cast
+
+import numpy as np
+
+from monitor.rules.base import MEASURE_PARAMETER, Rule, read_common, read_measure
+from monitor.rules.inputs import Condition, DayInputs
+from monitor.rules.params import Param, TableReader
+from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
+
+Direction = Literal["up", "down", "either"]
+
+_TOLERANCE = 1e-12
+"""Moves equal to ``delta`` count as breaches despite binary rounding of decimal values."""
+
+
+@dataclass(frozen=True, eq=False, kw_only=True)
+class JumpRule(Rule):
+    """The correlation moved by at least ``delta`` over ``days`` business days."""
+
+    kind: ClassVar[str] = "jump"
+    summary: ClassVar[str] = "The correlation moved by at least delta over a few days."
+    own_parameters: ClassVar[tuple[Param, ...]] = (
+        MEASURE_PARAMETER,
+        Param("delta", "float", "Smallest move (absolute) that opens.", required=True,
+              minimum=0.01, maximum=2),
+        Param("days", "int", "Business days the move is measured over.", default=5, minimum=1),
+        Param("direction", "str", "Which moves count.", default="either",
+              choices=("up", "down", "either")),
+    )
+
+    targets: PairTargets
+    measure: str
+    delta: float
+    days: int
+    direction: Direction
+
+    @classmethod
+    def from_table(
+        cls, reader: TableReader, universe: Universe, default_measure: str | None
+    ) -> JumpRule:
+        common = read_common(reader)
+        return cls(
+            name=common.name,
+            severity=common.severity,
+            remind_every=common.remind_every,
+            hold=common.hold,
+            targets=resolve_pairs(reader, universe),
+            measure=read_measure(reader, "measure", default_measure).text,
+            delta=reader.read_number("delta"),
+            days=reader.read_int("days"),
+            direction=cast(Direction, reader.read_str("direction")),
+        )
+
+    def measures(self) -> list[str]:
+        return [self.measure]
+
+    def lags(self) -> list[tuple[str, int]]:
+        return [(self.measure, self.days)]
+
+    def pairs_needed(self) -> IntArray:
+        return self.targets.pairs
+
+    def evaluate(self, day: DayInputs) -> Condition:
+        pairs = self.targets.pairs
+        today = day.measure(self.measure, pairs)
+        before = day.lagged_measure(self.measure, self.days, pairs)
+        move = today.value - before.value
+        # The move in the watched direction: positive when it goes the alarming way.
+        if self.direction == "up":
+            signed = move
+        elif self.direction == "down":
+            signed = -move
+        else:
+            signed = np.abs(move)
+        known = np.isfinite(move)
+        return Condition.build(
+            breach=signed >= self.delta - _TOLERANCE,
+            clear=(signed < self.delta / 2.0) & known,
+            known=known,
+            value=today.value,
+            level=self.delta,
+            excess=signed - self.delta,
+            low=today.low,
+            high=today.high,
+            n=today.n,
+            reference=before.value,
+        )

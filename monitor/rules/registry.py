@@ -1,0 +1,124 @@
+"""Rule kinds by config word, building rules from ``[[rules]]`` tables, what they read.
+
+:func:`build_rules` is the only entry point the config loader needs; the pipeline then asks
+:func:`measures_needed`, :func:`lags_needed` and :func:`pairs_needed` what to compute, and
+the settings documentation is generated from :func:`rule_parameters`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+
+from monitor.errors import ConfigError
+from monitor.rules.base import SEVERITIES, Rule
+from monitor.rules.basket import BasketRule
+from monitor.rules.jump import JumpRule
+from monitor.rules.level import LevelRule
+from monitor.rules.params import Param, TableReader, suggestion
+from monitor.rules.shift import ShiftRule
+from monitor.rules.sign import SignRule
+from monitor.rules.stale import StaleRule
+from monitor.rules.targets import IntArray, Universe
+
+RULE_KINDS: dict[str, type[Rule]] = {
+    rule.kind: rule for rule in (LevelRule, ShiftRule, JumpRule, SignRule, BasketRule, StaleRule)
+}
+"""Config word -> rule class."""
+
+
+def rule_parameters() -> dict[str, list[Param]]:
+    """Every accepted key of every rule kind, in documentation order."""
+    return {kind: list(rule.parameters()) for kind, rule in RULE_KINDS.items()}
+
+
+def _rule_class(table: Mapping[str, object], index: int) -> type[Rule]:
+    name = table.get("name")
+    label = f"rules[{index}] ({name})" if isinstance(name, str) and name else f"rules[{index}]"
+    kind = table.get("kind")
+    known = ", ".join(sorted(RULE_KINDS))
+    if kind is None:
+        raise ConfigError(f"{label}.kind: missing required key (one of {known})")
+    if not isinstance(kind, str) or kind not in RULE_KINDS:
+        hint = suggestion(kind, RULE_KINDS) if isinstance(kind, str) else ""
+        raise ConfigError(f"{label}.kind: unknown kind {kind!r}{hint}; known kinds: {known}")
+    return RULE_KINDS[kind]
+
+
+def build_rules(
+    tables: Sequence[object],
+    *,
+    symbols: Sequence[str],
+    groups: Mapping[str, Sequence[str]],
+    default_measure: str | None = None,
+) -> list[Rule]:
+    """Build and check every rule of the configuration.
+
+    Parameters
+    ----------
+    tables : sequence of dict
+        The ``[[rules]]`` tables, TOML-parsed, in file order.
+    symbols : sequence of str
+        The desk's instruments; column ``k`` of every array is ``symbols[k]``.
+    groups : mapping of str to sequence of str
+        Named groups of instruments.
+    default_measure : str, optional
+        Measure spec used by rules that do not set ``measure``.
+
+    Returns
+    -------
+    list of Rule
+        In file order.
+
+    Raises
+    ------
+    ConfigError
+        The first problem found, as one line naming the rule and key.
+    """
+    universe = Universe.build(symbols, groups)
+    rules: list[Rule] = []
+    seen: dict[str, int] = {}
+    for index, table in enumerate(tables):
+        if not isinstance(table, Mapping):
+            raise ConfigError(f"rules[{index}]: expected a table, got {type(table).__name__}")
+        rule_class = _rule_class(table, index)
+        reader = TableReader(table, index, rule_class.parameters(), rule_class.kind)
+        reader.check_keys()
+        rule = rule_class.from_table(reader, universe, default_measure)
+        if rule.name in seen:
+            raise reader.error(
+                "name", f"duplicate rule name {rule.name!r} (also rules[{seen[rule.name]}])"
+            )
+        seen[rule.name] = index
+        rules.append(rule)
+    return rules
+
+
+def measures_needed(rules: Sequence[Rule]) -> list[str]:
+    """Distinct measure texts the rules read, in first-use order."""
+    return list(dict.fromkeys(text for rule in rules for text in rule.measures()))
+
+
+def lags_needed(rules: Sequence[Rule]) -> list[tuple[str, int]]:
+    """Distinct ``(measure text, lag)`` couples the rules read from earlier days."""
+    return list(dict.fromkeys(lag for rule in rules for lag in rule.lags()))
+
+
+def pairs_needed(rules: Sequence[Rule], n_symbols: int) -> IntArray:
+    """Union (P_all, 2) of the pairs the rules read, ``i < j``, sorted by (i, j)."""
+    blocks = [rule.pairs_needed() for rule in rules]
+    stacked = np.concatenate(blocks) if blocks else np.empty((0, 2), dtype=np.int64)
+    codes = np.unique(stacked[:, 0] * n_symbols + stacked[:, 1])
+    return np.column_stack([codes // n_symbols, codes % n_symbols]).astype(np.int64)
+
+
+__all__ = [
+    "RULE_KINDS",
+    "SEVERITIES",
+    "build_rules",
+    "lags_needed",
+    "measures_needed",
+    "pairs_needed",
+    "rule_parameters",
+]

@@ -1,0 +1,76 @@
+"""The ``sign`` rule: a pair's correlation has the opposite sign to the one expected.
+
+``expected = "positive"`` opens when the whole confidence band is below zero (band high
+< 0), so a noisy estimate that merely dips under zero does not count; it clears when the
+band reaches zero again (band high >= 0), which includes the sign coming back.
+``expected = "negative"`` mirrors it. A NaN band gives no decision.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar, Literal, cast
+
+import numpy as np
+
+from monitor.rules.base import MEASURE_PARAMETER, Rule, read_common, read_measure
+from monitor.rules.inputs import Condition, DayInputs
+from monitor.rules.params import Param, TableReader
+from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
+
+Expected = Literal["positive", "negative"]
+
+
+@dataclass(frozen=True, eq=False, kw_only=True)
+class SignRule(Rule):
+    """The confidence band lies entirely on the unexpected side of zero."""
+
+    kind: ClassVar[str] = "sign"
+    summary: ClassVar[str] = "The correlation's sign flipped, band clear of zero."
+    own_parameters: ClassVar[tuple[Param, ...]] = (
+        MEASURE_PARAMETER,
+        Param("expected", "str", "The sign the pair normally has.", required=True,
+              choices=("positive", "negative")),
+    )
+
+    targets: PairTargets
+    measure: str
+    expected: Expected
+
+    @classmethod
+    def from_table(
+        cls, reader: TableReader, universe: Universe, default_measure: str | None
+    ) -> SignRule:
+        common = read_common(reader)
+        return cls(
+            name=common.name,
+            severity=common.severity,
+            remind_every=common.remind_every,
+            hold=common.hold,
+            targets=resolve_pairs(reader, universe),
+            measure=read_measure(reader, "measure", default_measure).text,
+            expected=cast(Expected, reader.read_str("expected")),
+        )
+
+    def measures(self) -> list[str]:
+        return [self.measure]
+
+    def pairs_needed(self) -> IntArray:
+        return self.targets.pairs
+
+    def evaluate(self, day: DayInputs) -> Condition:
+        today = day.measure(self.measure, self.targets.pairs)
+        known = np.isfinite(today.low) & np.isfinite(today.high)
+        # Distance of the band's near edge beyond zero on the unexpected side.
+        excess = -today.high if self.expected == "positive" else today.low
+        return Condition.build(
+            breach=excess > 0,
+            clear=(excess <= 0) & known,
+            known=known,
+            value=today.value,
+            level=0.0,
+            excess=excess,
+            low=today.low,
+            high=today.high,
+            n=today.n,
+        )

@@ -1,0 +1,732 @@
+"""Rules: configuration checking, target resolution and the daily conditions of each kind.
+
+The desk here is fictional: Kelvara Industrial (KLV), Orma Utilities (ORMA), Vesk Freight
+(VESK), the TEZ10 and LUMA5 rate futures and the Prax credit index (PRAX).
+"""
+
+from __future__ import annotations
+
+import datetime
+import math
+
+import numpy as np
+import pytest
+
+from monitor.alerts import AlertBook, AlertEvent
+from monitor.errors import ConfigError, SpecError
+from monitor.rules import (
+    RULE_KINDS,
+    DayInputs,
+    MeasureDay,
+    PairLayout,
+    Rule,
+    build_rules,
+    fisher_difference,
+    lags_needed,
+    measures_needed,
+    pairs_needed,
+    rule_parameters,
+    two_sided_p,
+)
+from monitor.rules.params import _fallback_parse
+
+SYMBOLS = ["KLV", "ORMA", "VESK", "TEZ10", "LUMA5", "PRAX"]
+GROUPS = {"equities": ["KLV", "ORMA", "VESK"], "rates": ["TEZ10", "LUMA5"], "credit": ["PRAX"]}
+START = datetime.date(2024, 3, 1)
+
+
+def build(*tables: dict[str, object], default_measure: str | None = None) -> list[Rule]:
+    return build_rules(
+        list(tables), symbols=SYMBOLS, groups=GROUPS, default_measure=default_measure
+    )
+
+
+def one(**table: object) -> Rule:
+    base: dict[str, object] = {"name": "t", "measure": "rolling:63"}
+    base.update(table)
+    return build(base)[0]
+
+
+def error_of(*tables: dict[str, object], default_measure: str | None = None) -> str:
+    with pytest.raises(ConfigError) as info:
+        build(*tables, default_measure=default_measure)
+    return str(info.value)
+
+
+def measure_day(
+    value: object, *, low: object = None, high: object = None, n: object = 63.0
+) -> MeasureDay:
+    values = np.asarray(value, dtype=np.float64)
+    size = values.shape
+    return MeasureDay(
+        value=values,
+        n=np.broadcast_to(np.asarray(n, dtype=np.float64), size).copy(),
+        low=values - 0.1 if low is None else np.asarray(low, dtype=np.float64),
+        high=values + 0.1 if high is None else np.asarray(high, dtype=np.float64),
+        stale=np.zeros(size, dtype=bool),
+    )
+
+
+def day_for(
+    rule: Rule,
+    measures: dict[str, MeasureDay],
+    *,
+    offset: int = 0,
+    lagged: dict[tuple[str, int], MeasureDay] | None = None,
+    **extra: object,
+) -> DayInputs:
+    """Per-pair arrays aligned to exactly the pairs the rule reads."""
+    layout = PairLayout(rule.pairs_needed(), len(SYMBOLS))
+    return DayInputs(
+        date=START + datetime.timedelta(days=offset),
+        measures=measures,
+        layout=layout,
+        lagged=lagged or {},
+        **extra,  # type: ignore[arg-type]
+    )
+
+
+def run(rule: Rule, days: list[DayInputs]) -> list[AlertEvent]:
+    book = AlertBook()
+    events: list[AlertEvent] = []
+    for day in days:
+        events += book.step(rule, rule.evaluate(day), day.date)
+    return events
+
+
+def summary(events: list[AlertEvent]) -> list[tuple[str, str, int]]:
+    return [(e.event, e.target, (e.date - START).days) for e in events]
+
+
+# --- targets ---------------------------------------------------------------------------
+
+
+def test_pairs_are_canonical_sorted_and_deduplicated() -> None:
+    rule = one(kind="level", above=0.7, pairs=["ORMA/KLV", "KLV/ORMA", "TEZ10/KLV"])
+    assert rule.targets.labels == ("KLV/ORMA", "KLV/TEZ10")
+    np.testing.assert_array_equal(rule.pairs_needed(), [[0, 1], [0, 3]])
+
+
+def test_group_targets_every_pair_within_the_group() -> None:
+    rule = one(kind="level", above=0.7, group="equities")
+    assert rule.targets.labels == ("KLV/ORMA", "KLV/VESK", "ORMA/VESK")
+
+
+def test_between_targets_only_pairs_across_the_two_groups() -> None:
+    rule = one(kind="level", above=0.7, between=["equities", "rates"])
+    assert set(rule.targets.labels) == {
+        f"{a}/{b}" for a in ("KLV", "ORMA", "VESK") for b in ("TEZ10", "LUMA5")
+    }
+    assert len(rule.targets) == 6
+
+
+def test_all_targets_every_pair_in_upper_triangle_order() -> None:
+    rule = one(kind="level", above=0.7, all=True)
+    first, second = np.triu_indices(len(SYMBOLS), k=1)
+    np.testing.assert_array_equal(rule.pairs_needed(), np.column_stack([first, second]))
+
+
+def test_pairs_group_and_between_combine_as_a_union() -> None:
+    rule = one(kind="level", above=0.7, pairs=["PRAX/KLV", "KLV/ORMA"], group="rates")
+    assert rule.targets.labels == ("KLV/ORMA", "KLV/PRAX", "TEZ10/LUMA5")
+
+
+def test_unknown_symbol_in_a_pair_is_named_with_a_suggestion() -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7,
+                        "pairs": ["KLW/ORMA"]})
+    assert message == "rules[0] (t).pairs: unknown symbol 'KLW' in 'KLW/ORMA' (did you mean 'KLV'?)"
+
+
+def test_unknown_group_is_named_with_a_suggestion() -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7,
+                        "group": "equites"})
+    assert message == "rules[0] (t).group: unknown group 'equites' (did you mean 'equities'?)"
+
+
+def test_unknown_group_in_between_names_the_key() -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7,
+                        "between": ["equities", "fx"]})
+    assert message.startswith("rules[0] (t).between: unknown group 'fx'")
+
+
+def test_group_of_one_instrument_resolves_to_no_pairs() -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7,
+                        "group": "credit"})
+    assert message == "rules[0] (t).group: resolves to no pairs"
+
+
+def test_rule_without_targets_is_refused() -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7})
+    assert message.startswith("rules[0] (t).targets: no targets")
+
+
+def test_all_cannot_be_combined_with_explicit_pairs() -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7,
+                        "all": True, "pairs": ["KLV/ORMA"]})
+    assert message == "rules[0] (t).all: all = true cannot be combined with pairs"
+
+
+@pytest.mark.parametrize(
+    ("pair", "problem"),
+    [
+        ("KLV-ORMA", "is not a pair written as 'A/B'"),
+        ("KLV/KLV", "pairs an instrument with itself"),
+    ],
+)
+def test_malformed_pairs_are_refused(pair: str, problem: str) -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7,
+                        "pairs": [pair]})
+    assert message == f"rules[0] (t).pairs: {pair!r} {problem}"
+
+
+def test_group_naming_an_unknown_symbol_is_refused() -> None:
+    with pytest.raises(ConfigError, match=r"^groups\.rates: unknown symbol 'TEZ20'"):
+        build_rules([], symbols=SYMBOLS, groups={"rates": ["TEZ10", "TEZ20"]})
+
+
+def test_target_mask_marks_labels_and_ignores_unknown_ones() -> None:
+    rule = one(kind="level", above=0.7, group="equities")
+    mask = rule.targets.mask(["ORMA/VESK", "KLV/PRAX"])
+    np.testing.assert_array_equal(mask, [False, False, True])
+
+
+# --- configuration errors --------------------------------------------------------------
+
+
+def test_unknown_kind_suggests_the_nearest() -> None:
+    message = error_of({"name": "t", "kind": "levle"})
+    assert message.startswith("rules[0] (t).kind: unknown kind 'levle' (did you mean 'level'?)")
+
+
+def test_missing_kind_lists_the_known_kinds() -> None:
+    message = error_of({"name": "t"})
+    assert message == (
+        "rules[0] (t).kind: missing required key (one of basket, jump, level, shift, sign, stale)"
+    )
+
+
+def test_unknown_key_suggests_the_nearest() -> None:
+    message = error_of({"name": "t", "kind": "level", "abov": 0.7, "all": True})
+    assert message == "rules[0] (t).abov: unknown key for kind 'level' (did you mean 'above'?)"
+
+
+def test_key_of_another_kind_is_unknown_here() -> None:
+    message = error_of({"name": "t", "kind": "level", "above": 0.7, "all": True, "delta": 0.2})
+    assert message.startswith("rules[0] (t).delta: unknown key for kind 'level'")
+
+
+def test_clear_on_the_wrong_side_of_above_names_rule_and_key() -> None:
+    tables = [
+        {"name": "calm", "kind": "level", "measure": "rolling:63", "above": 0.5, "all": True},
+        {"name": "drift", "kind": "sign", "measure": "rolling:63", "expected": "positive",
+         "all": True},
+        {"name": "hedge-break", "kind": "level", "measure": "rolling:63", "above": 0.7,
+         "clear": 0.75, "all": True},
+    ]
+    assert error_of(*tables) == (
+        "rules[2] (hedge-break).clear: 0.75 is on the wrong side of above = 0.7 (must be below it)"
+    )
+
+
+def test_clear_on_the_wrong_side_of_below_names_rule_and_key() -> None:
+    message = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "below": -0.2,
+                        "clear": -0.3, "all": True})
+    assert message == (
+        "rules[0] (t).clear: -0.3 is on the wrong side of below = -0.2 (must be above it)"
+    )
+
+
+def test_level_needs_exactly_one_of_above_and_below() -> None:
+    neither = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "all": True})
+    both = error_of({"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7,
+                     "below": -0.7, "all": True})
+    assert neither == (
+        "rules[0] (t).above: missing required key (set exactly one of above and below)"
+    )
+    assert both == "rules[0] (t).below: set exactly one of above and below, not both"
+
+
+def test_window_shorter_than_three_is_refused_with_rule_and_key() -> None:
+    with pytest.raises(SpecError) as info:
+        build({"name": "t", "kind": "level", "measure": "rolling:2", "above": 0.7, "all": True})
+    assert str(info.value).startswith("rules[0] (t).measure: ")
+
+
+def test_fallback_measure_parser_explains_a_short_window() -> None:
+    with pytest.raises(SpecError, match=r"^window 2 in 'rolling:2' is shorter than 3$"):
+        _fallback_parse("rolling:2")
+
+
+@pytest.mark.parametrize("spec", ["rollin:63", "ewma:hl=21,lambda=0.9", "ewma:lambda=1.2", "rank"])
+def test_unknown_measure_spec_is_refused_with_rule_and_key(spec: str) -> None:
+    with pytest.raises(SpecError) as info:
+        build({"name": "t", "kind": "jump", "measure": spec, "delta": 0.2, "all": True})
+    assert str(info.value).startswith("rules[0] (t).measure: ")
+
+
+def test_fallback_measure_parser_reads_windows_and_decays() -> None:
+    assert _fallback_parse("rank:63").window == 63
+    # lambda from a half-life: 0.5 ** (1 / hl), the definition of a half-life.
+    assert _fallback_parse("ewma:hl=21").decay == pytest.approx(0.5 ** (1 / 21))
+    assert _fallback_parse("ewma:lambda=0.94,mean=zero").decay == 0.94
+
+
+def test_rule_without_measure_uses_the_default_measure() -> None:
+    (rule,) = build({"name": "t", "kind": "level", "above": 0.7, "all": True},
+                    default_measure="ewma:hl=21")
+    assert rule.measures() == ["ewma:hl=21"]
+
+
+def test_rule_without_measure_and_without_default_is_refused() -> None:
+    message = error_of({"name": "t", "kind": "level", "above": 0.7, "all": True})
+    assert message == (
+        "rules[0] (t).measure: missing required key (no default measure is configured)"
+    )
+
+
+def test_bad_default_measure_is_reported_on_the_rule_using_it() -> None:
+    with pytest.raises(SpecError) as info:
+        build({"name": "t", "kind": "level", "above": 0.7, "all": True},
+              default_measure="rollng:63")
+    assert str(info.value).startswith("rules[0] (t).measure: default measure ")
+
+
+@pytest.mark.parametrize(
+    ("key", "value", "expected"),
+    [
+        ("hold", "3", "rules[0] (t).hold: expected an integer, got '3' (str)"),
+        ("hold", True, "rules[0] (t).hold: expected an integer, got True (bool)"),
+        ("hold", 0, "rules[0] (t).hold: 0 is below the minimum 1"),
+        ("above", "high", "rules[0] (t).above: expected a number, got 'high' (str)"),
+        ("above", 1.5, "rules[0] (t).above: 1.5 is above the maximum 1"),
+        ("confident", "yes", "rules[0] (t).confident: expected true or false, got 'yes' (str)"),
+        ("pairs", "KLV/ORMA",
+         "rules[0] (t).pairs: expected a list of strings, got 'KLV/ORMA' (str)"),
+        ("severity", "warn",
+         "rules[0] (t).severity: 'warn' is not one of info, warning, critical "
+         "(did you mean 'warning'?)"),
+        ("remind_every", -1, "rules[0] (t).remind_every: -1 is below the minimum 0"),
+    ],
+)
+def test_wrong_types_and_values_name_rule_key_and_value(
+    key: str, value: object, expected: str
+) -> None:
+    table: dict[str, object] = {"name": "t", "kind": "level", "measure": "rolling:63",
+                                "above": 0.7, "group": "equities"}
+    table[key] = value
+    assert error_of(table) == expected
+
+
+def test_duplicate_rule_names_are_refused() -> None:
+    table = {"name": "t", "kind": "level", "measure": "rolling:63", "above": 0.7, "all": True}
+    assert error_of(table, dict(table)) == (
+        "rules[1] (t).name: duplicate rule name 't' (also rules[0])"
+    )
+
+
+def test_missing_and_malformed_names_are_refused() -> None:
+    assert error_of({"kind": "level", "above": 0.7, "all": True}) == (
+        "rules[0].name: missing required key"
+    )
+    assert error_of({"name": "hedge break", "kind": "level", "above": 0.7, "all": True}) == (
+        "rules[0] (hedge break).name: 'hedge break' is not a valid rule name "
+        "(letters, digits, '-', '_', '.')"
+    )
+
+
+def test_rules_entry_that_is_not_a_table_is_refused() -> None:
+    with pytest.raises(ConfigError, match=r"^rules\[0\]: expected a table, got str$"):
+        build_rules(["level"], symbols=SYMBOLS, groups=GROUPS)
+
+
+@pytest.mark.parametrize(
+    ("table", "expected"),
+    [
+        ({"kind": "jump", "all": True}, "rules[0] (t).delta: missing required key"),
+        ({"kind": "sign", "all": True}, "rules[0] (t).expected: missing required key"),
+        ({"kind": "sign", "expected": "up", "all": True},
+         "rules[0] (t).expected: 'up' is not one of positive, negative"),
+        ({"kind": "shift", "all": True},
+         "rules[0] (t).long: missing required key (test = 'nested' needs it)"),
+        ({"kind": "shift", "long": "rolling:21", "all": True},
+         "rules[0] (t).long: 'rolling:21' must be a longer measure of the same kind as "
+         "measure = 'rolling:63'"),
+        ({"kind": "shift", "long": "ewma:hl=126", "all": True},
+         "rules[0] (t).long: 'ewma:hl=126' must be a longer measure of the same kind as "
+         "measure = 'rolling:63'"),
+        ({"kind": "shift", "test": "adjacent", "long": "rolling:126", "all": True},
+         "rules[0] (t).long: only used with test = 'nested'"),
+        ({"kind": "shift", "test": "adjacent", "measure": "ewma:hl=21", "all": True},
+         "rules[0] (t).measure: 'ewma:hl=21': test = 'adjacent' needs a window measure "
+         "(rolling:<days> or rank:<days>)"),
+        ({"kind": "shift", "long": "rolling:126", "z": 3.0, "clear_z": 3.5, "all": True},
+         "rules[0] (t).clear_z: 3.5 must be below z = 3.0"),
+        ({"kind": "basket", "above": 0.6},
+         "rules[0] (t).group: no targets: set group or all = true"),
+        ({"kind": "basket", "above": 0.6, "group": "credit"},
+         "rules[0] (t).group: group 'credit' has fewer than two instruments"),
+        ({"kind": "stale", "symbols": ["KLV", "ORMX"]},
+         "rules[0] (t).symbols: unknown symbol 'ORMX' (did you mean 'ORMA'?)"),
+        ({"kind": "stale", "measure": "rolling:63", "all": True},
+         "rules[0] (t).measure: unknown key for kind 'stale'"),
+    ],
+)
+def test_each_kind_reports_its_own_bad_settings(table: dict[str, object], expected: str) -> None:
+    full: dict[str, object] = {"name": "t"}
+    if table["kind"] != "stale":
+        full["measure"] = "rolling:63"
+    full.update(table)
+    assert error_of(full).startswith(expected)
+
+
+def test_every_kind_documents_each_parameter() -> None:
+    documented = rule_parameters()
+    assert set(documented) == set(RULE_KINDS) == {
+        "level", "shift", "jump", "sign", "basket", "stale"
+    }
+    for kind, params in documented.items():
+        names = [param.name for param in params]
+        assert len(names) == len(set(names)), kind
+        assert {"name", "kind", "severity", "remind_every", "hold"} <= set(names)
+        for param in params:
+            assert param.help.endswith("."), (kind, param.name)
+            assert param.type_label
+
+
+def test_documented_defaults_are_the_defaults_applied() -> None:
+    (rule,) = build({"name": "t", "kind": "shift", "measure": "rolling:21",
+                     "long": "rolling:126", "all": True})
+    defaults = {param.name: param.default for param in rule_parameters()["shift"]}
+    assert rule.severity == defaults["severity"] == "warning"
+    assert rule.remind_every == defaults["remind_every"]
+    assert rule.hold == defaults["hold"] == 1
+    assert rule.z_level == defaults["z"] == 3.0  # type: ignore[attr-defined]
+    assert rule.clear_z == 2.0  # type: ignore[attr-defined]  # documented as z - 1
+
+
+# --- what the pipeline must compute ------------------------------------------------------
+
+
+def test_rules_declare_measures_lags_and_pairs_they_read() -> None:
+    rules = build(
+        {"name": "a", "kind": "level", "measure": "rolling:63", "above": 0.7,
+         "pairs": ["KLV/ORMA"]},
+        {"name": "b", "kind": "shift", "measure": "rolling:21", "test": "adjacent",
+         "group": "rates"},
+        {"name": "c", "kind": "jump", "measure": "rolling:63", "delta": 0.3, "days": 5,
+         "pairs": ["KLV/ORMA"]},
+        {"name": "d", "kind": "basket", "measure": "ewma:hl=21", "above": 0.6, "group": "equities"},
+        {"name": "e", "kind": "stale", "all": True},
+    )
+    assert measures_needed(rules) == ["rolling:63", "rolling:21", "ewma:hl=21"]
+    assert lags_needed(rules) == [("rolling:21", 21), ("rolling:63", 5)]
+    np.testing.assert_array_equal(
+        pairs_needed(rules, len(SYMBOLS)), [[0, 1], [0, 2], [1, 2], [3, 4]]
+    )
+
+
+def test_full_matrix_and_per_pair_inputs_give_the_same_condition() -> None:
+    rule = one(kind="level", above=0.5, between=["equities", "rates"])
+    rng = np.random.default_rng(7)
+    n = len(SYMBOLS)
+    matrix = rng.uniform(-1, 1, size=(n, n))
+    pairs = rule.pairs_needed()
+    # The engine's pair list can be in any order; the layout finds each rule pair in it.
+    layout_pairs = np.column_stack(np.triu_indices(n, k=1))[::-1]
+    per_pair = matrix[layout_pairs[:, 0], layout_pairs[:, 1]]
+    full_day = DayInputs(date=START, measures={"rolling:63": measure_day(matrix)})
+    pair_day = DayInputs(date=START, measures={"rolling:63": measure_day(per_pair)},
+                         layout=PairLayout(layout_pairs, n))
+    from_matrix = rule.evaluate(full_day)
+    from_pairs = rule.evaluate(pair_day)
+    np.testing.assert_array_equal(from_matrix.value, matrix[pairs[:, 0], pairs[:, 1]])
+    np.testing.assert_array_equal(from_pairs.value, from_matrix.value)
+    np.testing.assert_array_equal(from_pairs.breach, from_matrix.breach)
+
+
+def test_layout_missing_a_rule_pair_is_a_wiring_error() -> None:
+    rule = one(kind="level", above=0.5, group="equities")
+    day = DayInputs(date=START, measures={"rolling:63": measure_day([0.1])},
+                    layout=PairLayout([[0, 1]], len(SYMBOLS)))
+    with pytest.raises(ValueError, match=r"pair \(0, 2\) is not in the layout"):
+        rule.evaluate(day)
+
+
+def test_measure_not_supplied_is_a_wiring_error() -> None:
+    rule = one(kind="level", above=0.5, group="equities")
+    with pytest.raises(KeyError, match="rolling:63"):
+        rule.evaluate(DayInputs(date=START, measures={}))
+
+
+# --- level -----------------------------------------------------------------------------
+
+
+def test_level_breach_clear_and_nan_arrays() -> None:
+    rule = one(kind="level", above=0.7, pairs=["KLV/ORMA", "KLV/VESK", "ORMA/VESK"])
+    # One pair per row of the day: breach, dead-band, cleared; a fourth day for NaN.
+    condition = rule.evaluate(day_for(rule, {"rolling:63": measure_day([0.75, 0.68, 0.6])}))
+    np.testing.assert_array_equal(condition.breach, [True, False, False])
+    np.testing.assert_array_equal(condition.clear, [False, False, True])
+    missing = rule.evaluate(day_for(rule, {"rolling:63": measure_day([np.nan] * 3)}))
+    assert not missing.breach.any() and not missing.clear.any() and not missing.known.any()
+
+
+def test_level_default_clear_is_the_level_minus_the_dead_band() -> None:
+    above = one(kind="level", above=0.7, all=True)
+    below = one(kind="level", below=-0.3, all=True)
+    assert above.threshold.clear_level == 0.65  # type: ignore[attr-defined]
+    assert below.threshold.clear_level == -0.25  # type: ignore[attr-defined]
+
+
+def test_level_below_mirrors_above() -> None:
+    rule = one(kind="level", below=-0.3, clear=-0.1, pairs=["KLV/ORMA", "KLV/VESK", "ORMA/VESK"])
+    condition = rule.evaluate(day_for(rule, {"rolling:63": measure_day([-0.35, -0.2, 0.0])}))
+    np.testing.assert_array_equal(condition.breach, [True, False, False])
+    np.testing.assert_array_equal(condition.clear, [False, False, True])
+    np.testing.assert_allclose(condition.excess, [0.05, -0.1, -0.3])
+
+
+def test_confident_level_opens_only_when_the_band_is_beyond_the_level() -> None:
+    rule = one(kind="level", above=0.7, confident=True, pairs=["KLV/ORMA"])
+    values = [0.80, 0.80, 0.80]
+    lows = [0.65, 0.69, 0.72]
+    days = [
+        day_for(rule, {"rolling:63": measure_day([v], low=[lo], high=[v + 0.1])}, offset=k)
+        for k, (v, lo) in enumerate(zip(values, lows, strict=True))
+    ]
+    assert summary(run(rule, days)) == [("opened", "KLV/ORMA", 2)]
+    plain = one(kind="level", above=0.7, pairs=["KLV/ORMA"])
+    assert summary(run(plain, days)) == [("opened", "KLV/ORMA", 0)]
+
+
+def test_confident_below_uses_the_band_high() -> None:
+    rule = one(kind="level", below=-0.5, confident=True, pairs=["KLV/ORMA"])
+    inside = rule.evaluate(day_for(rule, {"rolling:63": measure_day([-0.7], high=[-0.45])}))
+    beyond = rule.evaluate(day_for(rule, {"rolling:63": measure_day([-0.7], high=[-0.55])}))
+    assert not inside.breach[0] and beyond.breach[0]
+
+
+# --- shift -----------------------------------------------------------------------------
+
+
+def test_difference_of_independent_correlations_matches_published_example() -> None:
+    """Documentation example of R package psych, function r.test (REFERENCES.md):
+    r1 = 0.5, n1 = 100 vs r2 = 0.4, n2 = 80 -> z = 0.82, two-sided p = 0.41."""
+    z = fisher_difference(np.array([0.5]), np.array([100.0]), np.array([0.4]), np.array([80.0]),
+                          nested=False)
+    assert round(float(z[0]), 2) == 0.82
+    assert round(float(two_sided_p(z)[0]), 2) == 0.41
+
+
+def test_two_sided_p_agrees_with_math_erfc() -> None:
+    """Reference: Python's math.erfc; p = erfc(|z| / sqrt 2) is the two-sided normal tail."""
+    z = np.linspace(-12, 12, 2401)
+    expected = np.array([math.erfc(abs(v) / math.sqrt(2.0)) for v in z])
+    np.testing.assert_allclose(two_sided_p(z), expected, rtol=2e-7)
+    assert np.isnan(two_sided_p(np.array([np.nan]))[0])
+
+
+def test_nested_variance_is_the_difference_of_the_two_inverses() -> None:
+    """REFERENCES.md: for nested windows var(z_s - z_l) ~ 1/(n_s - 3) - 1/(n_l - 3)."""
+    z = fisher_difference(np.array([0.9]), np.array([21.0]), np.array([0.3]), np.array([126.0]),
+                          nested=True)
+    by_hand = (math.atanh(0.9) - math.atanh(0.3)) / math.sqrt(1 / 18 - 1 / 123)
+    assert float(z[0]) == pytest.approx(by_hand, rel=1e-12)
+
+
+def test_fisher_difference_is_nan_without_enough_observations() -> None:
+    z = fisher_difference(np.array([0.9, 0.9, np.nan]), np.array([3.0, 126.0, 21.0]),
+                          np.array([0.3, 0.3, 0.3]), np.array([126.0, 21.0, 126.0]), nested=True)
+    assert np.isnan(z).all()
+
+
+def test_nested_shift_rule_opens_on_large_z_and_reports_p() -> None:
+    rule = one(kind="shift", measure="rolling:21", long="rolling:126",
+               pairs=["KLV/ORMA", "KLV/VESK"])
+    day = day_for(rule, {
+        "rolling:21": measure_day([0.9, 0.35], n=21.0),
+        "rolling:126": measure_day([0.3, 0.3], n=126.0),
+    })
+    condition = rule.evaluate(day)
+    np.testing.assert_array_equal(condition.breach, [True, False])
+    np.testing.assert_array_equal(condition.clear, [False, True])
+    np.testing.assert_allclose(condition.reference, [0.3, 0.3])
+    expected_p = [math.erfc(abs(z) / math.sqrt(2)) for z in condition.z]
+    np.testing.assert_allclose(condition.p, expected_p, rtol=2e-7)
+
+
+def test_adjacent_shift_compares_with_the_window_before() -> None:
+    rule = one(kind="shift", measure="rolling:21", test="adjacent", z=2.0, pairs=["KLV/ORMA"])
+    assert rule.lags() == [("rolling:21", 21)]
+    day = day_for(rule, {"rolling:21": measure_day([0.8], n=21.0)},
+                  lagged={("rolling:21", 21): measure_day([0.1], n=21.0)})
+    condition = rule.evaluate(day)
+    # Disjoint windows: the variances add (REFERENCES.md, two independent correlations).
+    by_hand = (math.atanh(0.8) - math.atanh(0.1)) / math.sqrt(2 / 18)
+    assert float(condition.z[0]) == pytest.approx(by_hand, rel=1e-12)
+    assert condition.breach[0]
+
+
+def test_rank_shift_widens_the_variance_by_the_spearman_factor() -> None:
+    """Fieller, Hartley & Pearson (1957): var(atanh r_s) ~ 1.06/(n - 3) (typed from memory)."""
+    rank = one(kind="shift", measure="rank:21", test="adjacent", pairs=["KLV/ORMA"])
+    pearson = one(kind="shift", measure="rolling:21", test="adjacent", pairs=["KLV/ORMA"])
+    now, before = measure_day([0.8], n=21.0), measure_day([0.1], n=21.0)
+    z_rank = rank.evaluate(day_for(rank, {"rank:21": now}, lagged={("rank:21", 21): before})).z
+    z_pearson = pearson.evaluate(
+        day_for(pearson, {"rolling:21": now}, lagged={("rolling:21", 21): before})
+    ).z
+    assert float(z_pearson[0] / z_rank[0]) == pytest.approx(math.sqrt(1.06), rel=1e-12)
+
+
+def test_adjacent_shift_without_the_lagged_window_is_a_wiring_error() -> None:
+    rule = one(kind="shift", measure="rolling:21", test="adjacent", pairs=["KLV/ORMA"])
+    with pytest.raises(KeyError, match="rolling:21"):
+        rule.evaluate(day_for(rule, {"rolling:21": measure_day([0.8], n=21.0)}))
+
+
+def test_shift_alert_opens_after_hold_days_and_clears_below_clear_z() -> None:
+    rule = one(kind="shift", measure="rolling:21", long="rolling:126", hold=2, pairs=["KLV/ORMA"])
+    shorts = [0.3, 0.9, 0.9, 0.7, 0.35]  # z: ~0, >3, >3, between 2 and 3, < 2
+    days = [
+        day_for(rule, {"rolling:21": measure_day([r], n=21.0),
+                       "rolling:126": measure_day([0.3], n=126.0)}, offset=k)
+        for k, r in enumerate(shorts)
+    ]
+    z = [float(rule.evaluate(d).z[0]) for d in days]
+    assert abs(z[0]) < 2 and z[1] > 3 and 2 < z[3] < 3 and abs(z[4]) < 2
+    assert summary(run(rule, days)) == [("opened", "KLV/ORMA", 2), ("cleared", "KLV/ORMA", 4)]
+
+
+# --- jump ------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("direction", "breach", "clear"),
+    [
+        ("either", [True, True, False, False], [False, False, False, True]),
+        ("up", [True, False, False, False], [False, True, False, True]),
+        ("down", [False, True, False, False], [True, False, True, True]),
+    ],
+)
+def test_jump_direction_breach_and_half_delta_clear(
+    direction: str, breach: list[bool], clear: list[bool]
+) -> None:
+    rule = one(kind="jump", delta=0.3, days=5, direction=direction,
+               pairs=["KLV/ORMA", "KLV/VESK", "ORMA/VESK", "TEZ10/LUMA5"])
+    # Moves: +0.3 (exactly delta), -0.4, +0.2 (between delta/2 and delta), +0.1.
+    today = measure_day([0.6, 0.0, 0.5, 0.2])
+    before = measure_day([0.3, 0.4, 0.3, 0.1])
+    condition = rule.evaluate(day_for(rule, {"rolling:63": today},
+                                      lagged={("rolling:63", 5): before}))
+    np.testing.assert_array_equal(condition.breach, breach)
+    np.testing.assert_array_equal(condition.clear, clear)
+    np.testing.assert_allclose(condition.reference, [0.3, 0.4, 0.3, 0.1])
+
+
+def test_jump_opens_on_the_move_and_clears_when_the_move_fades() -> None:
+    rule = one(kind="jump", delta=0.3, days=2, pairs=["KLV/ORMA"])
+    series = [0.2, 0.2, 0.25, 0.55, 0.6, 0.62, 0.64]
+    days = []
+    for k, value in enumerate(series):
+        lagged = measure_day([series[k - 2]]) if k >= 2 else MeasureDay.missing(1)
+        days.append(day_for(rule, {"rolling:63": measure_day([value])},
+                            lagged={("rolling:63", 2): lagged}, offset=k))
+    # Moves over 2 days: -, -, 0.05, 0.35, 0.35, 0.07, 0.04.
+    assert summary(run(rule, days)) == [("opened", "KLV/ORMA", 3), ("cleared", "KLV/ORMA", 5)]
+
+
+# --- sign ------------------------------------------------------------------------------
+
+
+def test_sign_opens_when_the_band_is_wholly_on_the_other_side_and_clears_at_zero() -> None:
+    rule = one(kind="sign", expected="positive", pairs=["KLV/ORMA"])
+    bands = [(0.1, 0.3), (-0.3, 0.05), (-0.45, -0.05), (-0.5, -0.1), (-0.2, 0.0), (0.1, 0.4)]
+    days = [
+        day_for(rule, {"rolling:63": measure_day([(lo + hi) / 2], low=[lo], high=[hi])}, offset=k)
+        for k, (lo, hi) in enumerate(bands)
+    ]
+    assert summary(run(rule, days)) == [("opened", "KLV/ORMA", 2), ("cleared", "KLV/ORMA", 4)]
+
+
+def test_sign_expected_negative_mirrors_positive() -> None:
+    rule = one(kind="sign", expected="negative", pairs=["TEZ10/LUMA5", "KLV/ORMA"])
+    condition = rule.evaluate(day_for(rule, {"rolling:63": measure_day(
+        [0.3, 0.05], low=[0.1, -0.1], high=[0.5, 0.2])}))
+    # Canonical order: KLV/ORMA (band wholly positive) first, then TEZ10/LUMA5 (band spans 0).
+    np.testing.assert_array_equal(condition.breach, [True, False])
+    np.testing.assert_array_equal(condition.clear, [False, True])
+
+
+# --- basket ----------------------------------------------------------------------------
+
+
+def test_basket_averages_the_pairs_inside_each_group() -> None:
+    rule = one(kind="basket", above=0.6, group=["equities", "rates"])
+    assert rule.targets.labels == ("equities", "rates")
+    pairs = rule.pairs_needed()
+    # Pairs: KLV/ORMA, KLV/VESK, ORMA/VESK (equities), then TEZ10/LUMA5 (rates).
+    np.testing.assert_array_equal(pairs, [[0, 1], [0, 2], [1, 2], [3, 4]])
+    condition = rule.evaluate(day_for(rule, {"rolling:63": measure_day([0.5, 0.7, 0.9, 0.2])}))
+    np.testing.assert_allclose(condition.value, [0.7, 0.2])
+    np.testing.assert_allclose(condition.n, [3, 1])
+    np.testing.assert_array_equal(condition.breach, [True, False])
+
+
+def test_basket_average_needs_the_minimum_coverage() -> None:
+    rule = one(kind="basket", above=0.6, group="equities", min_coverage=0.5)
+    enough = rule.evaluate(day_for(rule, {"rolling:63": measure_day([0.8, np.nan, 0.9])}))
+    thin = rule.evaluate(day_for(rule, {"rolling:63": measure_day([0.8, np.nan, np.nan])}))
+    assert float(enough.value[0]) == pytest.approx(0.85)
+    assert np.isnan(thin.value[0]) and not thin.known[0]
+
+
+def test_basket_alert_opens_and_clears_with_the_dead_band() -> None:
+    rule = one(kind="basket", above=0.6, clear=0.5, hold=2, group="equities")
+    averages = [0.4, 0.65, 0.7, 0.55, 0.62, 0.45]
+    days = [day_for(rule, {"rolling:63": measure_day([a, a, a])}, offset=k)
+            for k, a in enumerate(averages)]
+    assert summary(run(rule, days)) == [("opened", "equities", 2), ("cleared", "equities", 5)]
+
+
+def test_all_baskets_means_every_group_of_two_or_more() -> None:
+    rule = one(kind="basket", above=0.6, all=True)
+    assert rule.targets.labels == ("equities", "rates")
+
+
+# --- stale -----------------------------------------------------------------------------
+
+
+def test_stale_counts_missing_and_unchanged_closes() -> None:
+    rule = build({"name": "t", "kind": "stale", "days": 3, "symbols": ["KLV", "ORMA", "VESK"]})[0]
+    missing = np.array([0, 4, 0, 0, 0, 0], dtype=np.float64)
+    flat = np.array([3, 0, np.nan, 0, 0, 0], dtype=np.float64)
+    condition = rule.evaluate(DayInputs(date=START, measures={}, days_without_close=missing,
+                                        days_unchanged=flat))
+    np.testing.assert_array_equal(condition.breach, [True, True, False])
+    np.testing.assert_array_equal(condition.known, [True, True, False])
+    ignore_flat = build({"name": "t", "kind": "stale", "days": 3, "unchanged": False,
+                         "symbols": ["KLV", "ORMA", "VESK"]})[0]
+    condition = ignore_flat.evaluate(DayInputs(date=START, measures={}, days_without_close=missing))
+    np.testing.assert_array_equal(condition.breach, [False, True, False])
+
+
+def test_stale_alert_opens_at_days_and_clears_on_a_fresh_close() -> None:
+    rule = build({"name": "t", "kind": "stale", "days": 3, "group": "rates"})[0]
+    assert rule.targets.labels == ("TEZ10", "LUMA5")
+    counts = [0, 1, 2, 3, 4, 0]
+    days = []
+    for k, count in enumerate(counts):
+        missing = np.zeros(len(SYMBOLS))
+        missing[3] = count
+        days.append(DayInputs(date=START + datetime.timedelta(days=k), measures={},
+                              days_without_close=missing, days_unchanged=np.zeros(len(SYMBOLS))))
+    assert summary(run(rule, days)) == [("opened", "TEZ10", 3), ("cleared", "TEZ10", 5)]
+    opened = run(rule, days)[0]
+    assert opened.symbols == (3,) and opened.value == 3.0 and opened.level == 3.0
+
+
+def test_stale_rule_without_its_inputs_is_a_wiring_error() -> None:
+    rule = build({"name": "t", "kind": "stale", "all": True})[0]
+    with pytest.raises(KeyError, match="days_without_close"):
+        rule.evaluate(DayInputs(date=START, measures={}))
