@@ -149,7 +149,7 @@ class InstrumentSettings:
 
     symbol: str = setting(_REQUIRED, "Code of the instrument as it appears in the CSV files.",
                           check=_symbol)
-    name: str = setting("", "Readable name.")
+    name: str = setting("", "Readable name, shown in the digest and the pages.")
     group: str = setting("", "Group the instrument belongs to (rules and gauges use groups).")
     currency: str = setting("", "Currency of the close.")
     calendar: str = setting("", "Free note on the instrument's trading calendar or close time.")
@@ -188,23 +188,23 @@ class Settings:
 
     @property
     def store(self) -> StoreSettings:
-        return self.sections["store"]  # type: ignore[no-any-return]
+        return self.sections["store"]
 
     @property
     def desk(self) -> DeskSettings:
-        return self.sections["desk"]  # type: ignore[no-any-return]
+        return self.sections["desk"]
 
     @property
     def returns(self) -> ReturnsSettings:
-        return self.sections["returns"]  # type: ignore[no-any-return]
+        return self.sections["returns"]
 
     @property
     def sources(self) -> SourcesSettings:
-        return self.sections["sources"]  # type: ignore[no-any-return]
+        return self.sections["sources"]
 
     @property
     def instruments(self) -> tuple[InstrumentSettings, ...]:
-        return self.sections["instruments"]  # type: ignore[no-any-return]
+        return self.sections["instruments"]
 
     def section(self, name: str) -> Any:
         return self.sections[name]

@@ -12,7 +12,15 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import Connection, String, and_, bindparam, cast, func, select, update
+from sqlalchemy import (
+    ColumnElement,
+    Connection,
+    and_,
+    bindparam,
+    func,
+    select,
+    update,
+)
 
 from storage.schema import (
     close_revisions,
@@ -78,31 +86,63 @@ def read_closes_long(
     end: dt.date | None = None,
 ) -> pd.DataFrame:
     """Closes as a long frame (symbol, date as datetime64, close), sorted by symbol and date."""
-    # Dates come back as text and are parsed in one vectorised call: per-row date objects
-    # would dominate the time of reading a ten-year panel.
-    query = select(closes.c.symbol, cast(closes.c.date, String), closes.c.close)
-    conditions = []
-    if symbols is not None:
-        if not symbols:
-            return pd.DataFrame({"symbol": pd.Series(dtype=str),
-                                 "date": pd.Series(dtype="datetime64[ns]"),
-                                 "close": pd.Series(dtype=float)})
-        if len(symbols) <= 500:
-            conditions.append(closes.c.symbol.in_(list(symbols)))
-    if start is not None:
-        conditions.append(closes.c.date >= start)
-    if end is not None:
-        conditions.append(closes.c.date <= end)
-    if conditions:
-        query = query.where(and_(*conditions))
-    rows = conn.execute(query).all()
-    frame = pd.DataFrame(rows, columns=["symbol", "date", "close"])
-    if symbols is not None and len(symbols) > 500:
-        frame = frame.loc[frame["symbol"].isin(set(symbols))]
-    frame["date"] = pd.to_datetime(frame["date"].astype(str).str.slice(0, 10), format="%Y-%m-%d")
+    wanted = None if symbols is None else set(symbols)
+    if wanted is not None and not wanted:
+        rows: list[tuple[object, ...]] = []
+    elif conn.dialect.name == "sqlite":
+        rows = _fetch_sqlite(conn, wanted, start, end)
+    else:
+        query = select(closes.c.symbol, closes.c.date, closes.c.close)
+        conditions: list[ColumnElement[bool]] = []
+        if wanted is not None and len(wanted) <= 500:
+            conditions.append(closes.c.symbol.in_(sorted(wanted)))
+        if start is not None:
+            conditions.append(closes.c.date >= start)
+        if end is not None:
+            conditions.append(closes.c.date <= end)
+        if conditions:
+            query = query.where(and_(*conditions))
+        rows = [tuple(r) for r in conn.execute(query)]
+    # Plain tuples into from_records and dates parsed in one vectorised call: per-row
+    # objects would dominate the time of reading a ten-year panel.
+    frame = pd.DataFrame.from_records(rows, columns=["symbol", "date", "close"],
+                                      coerce_float=True)
+    dates = frame["date"]
+    if not pd.api.types.is_string_dtype(dates) or conn.dialect.name != "sqlite":
+        dates = dates.astype(str).str.slice(0, 10)
+    frame["date"] = pd.to_datetime(dates, format="%Y-%m-%d")
     frame["close"] = frame["close"].astype("float64")
-    frame["symbol"] = frame["symbol"].astype(str)
-    return frame.sort_values(["symbol", "date"], kind="stable").reset_index(drop=True)
+    if wanted is not None and len(wanted) > 500:
+        frame = frame.loc[frame["symbol"].isin(wanted)]
+    if not frame.empty:
+        frame = frame.sort_values(["symbol", "date"], kind="stable").reset_index(drop=True)
+    return frame
+
+
+def _fetch_sqlite(conn: Connection, wanted: set[str] | None, start: dt.date | None,
+                  end: dt.date | None) -> list[tuple[object, ...]]:
+    # The driver's own cursor: SQLite keeps dates as ISO text, so nothing needs converting
+    # per row, and SQLAlchemy's result rows would cost more than the query itself.
+    sql = "SELECT symbol, date, close FROM closes"
+    clauses: list[str] = []
+    params: list[object] = []
+    if wanted is not None and len(wanted) <= 500:
+        clauses.append("symbol IN (" + ",".join("?" * len(wanted)) + ")")
+        params.extend(sorted(wanted))
+    if start is not None:
+        clauses.append("date >= ?")
+        params.append(start.isoformat())
+    if end is not None:
+        clauses.append("date <= ?")
+        params.append(end.isoformat())
+    if clauses:
+        sql += " WHERE " + " AND ".join(clauses)
+    cursor = conn.connection.cursor()
+    try:
+        cursor.execute(sql, params)
+        return list(cursor.fetchall())
+    finally:
+        cursor.close()
 
 
 def read_panel(
@@ -187,17 +227,7 @@ def write_closes(
 ) -> None:
     """Insert new closes, apply restatements with their audit rows, record suspect ticks."""
     if not fresh.empty:
-        conn.execute(
-            closes.insert(),
-            [
-                {"symbol": s, "date": d, "close": float(c), "source": src, "batch_id": batch_id}
-                for s, d, c, src in zip(
-                    fresh["symbol"].tolist(), _dates(fresh["date"]),
-                    fresh["close"].to_numpy(np.float64).tolist(), fresh["source"].tolist(),
-                    strict=True,
-                )
-            ],
-        )
+        _bulk_insert_closes(conn, batch_id, fresh)
     if not restated.empty:
         params = [
             {"b_symbol": s, "b_date": d, "b_close": float(new), "b_source": src,
@@ -233,6 +263,30 @@ def write_closes(
         ]
         if rows:
             conn.execute(suspect_ticks.insert(), rows)
+
+
+def _bulk_insert_closes(conn: Connection, batch_id: int, fresh: pd.DataFrame) -> None:
+    # Sorted by the primary key so the B-tree only ever appends.
+    fresh = fresh.sort_values(["symbol", "date"], kind="stable")
+    symbols = fresh["symbol"].tolist()
+    values = fresh["close"].to_numpy(np.float64).tolist()
+    sources = fresh["source"].tolist()
+    if conn.dialect.name == "sqlite":
+        # Straight to the driver: SQLAlchemy's per-row parameter processing costs more
+        # than SQLite's own insert for a ten-year file. The text form is what the Date
+        # type itself stores on SQLite.
+        days = pd.to_datetime(fresh["date"]).dt.strftime("%Y-%m-%d").tolist()
+        conn.exec_driver_sql(
+            "INSERT INTO closes (symbol, date, close, source, batch_id) VALUES (?, ?, ?, ?, ?)",
+            [(s, d, c, src, batch_id)
+             for s, d, c, src in zip(symbols, days, values, sources, strict=True)],
+        )
+        return
+    conn.execute(
+        closes.insert(),
+        [{"symbol": s, "date": d, "close": c, "source": src, "batch_id": batch_id}
+         for s, d, c, src in zip(symbols, _dates(fresh["date"]), values, sources, strict=True)],
+    )
 
 
 def write_revisions(conn: Connection, batch_id: int, file_name: str, restated: pd.DataFrame,

@@ -108,9 +108,9 @@ def open_store(url: str, *, create: bool = False) -> Store:
                         )
                     )
         with engine.connect() as conn:
-            if not inspect(conn).has_table("schema_version"):
-                raise StoreError(f"store {shown} is not initialised: run `comove init` first")
-            found = conn.execute(select(func.max(schema_version.c.version))).scalar()
+            initialised = inspect(conn).has_table("schema_version")
+            found = (conn.execute(select(func.max(schema_version.c.version))).scalar()
+                     if initialised else None)
     except OperationalError as exc:
         engine.dispose()
         reason = str(exc.orig).strip().splitlines()[0] if exc.orig else str(exc)
@@ -118,6 +118,9 @@ def open_store(url: str, *, create: bool = False) -> Store:
     except SQLAlchemyError as exc:
         engine.dispose()
         raise StoreError(f"cannot open store {shown}: {exc}") from None
+    if not initialised:
+        engine.dispose()
+        raise StoreError(f"store {shown} is not initialised: run `comove init` first")
     if found != SCHEMA_VERSION:
         engine.dispose()
         raise StoreError(

@@ -13,7 +13,6 @@ from sqlalchemy import (
     DateTime,
     Float,
     ForeignKey,
-    Index,
     Integer,
     MetaData,
     String,
@@ -67,7 +66,6 @@ closes = Table(
     Column("source", String(200), nullable=False, default=""),
     Column("batch_id", Integer, ForeignKey("ingest_batches.id"), nullable=True),
 )
-Index("ix_closes_date", closes.c.date)
 
 close_revisions = Table(
     "close_revisions",
