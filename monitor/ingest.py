@@ -77,7 +77,9 @@ def _decode(name: str, raw: bytes) -> str:
 
 def _detect_layout(name: str, columns: list[str], wanted: FileFormat) -> Literal["long", "wide"]:
     lowered = [c.strip().lower() for c in columns]
-    if wanted == "long" or (wanted == "auto" and all(c in lowered for c in LONG_COLUMNS)):
+    # A 'symbol' or 'close' column means the long layout was meant, so a missing partner
+    # column is reported instead of reading the file as wide.
+    if wanted == "long" or (wanted == "auto" and ("symbol" in lowered or "close" in lowered)):
         missing = [c for c in LONG_COLUMNS if c not in lowered]
         if missing:
             raise IngestError(
@@ -215,7 +217,7 @@ def _validate(
     )
     zone = f" in {today_zone}" if today_zone else ""
     report(
-        dates.dt.date.to_numpy() > today if len(dates) else np.zeros(0, bool),
+        (dates > pd.Timestamp(today)).to_numpy(),
         lambda i: f"{name}:{line[i]}: date '{raw_date[i]}' for {sym[i]} is after today "
         f"({today.isoformat()}{zone})",
     )
