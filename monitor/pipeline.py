@@ -140,8 +140,12 @@ def ingest_file(
         )
         closes_store.write_closes(conn, batch_id, str(path), fresh, restated, suspects, now)
         earliest = restated["date"].min().date() if not restated.empty else None
-        closes_store.finish_batch(conn, batch_id, closes_new=len(fresh),
-                                  closes_restated=len(restated), earliest_restated=earliest)
+        changed = pd.concat([fresh["date"], restated["date"]])
+        closes_store.finish_batch(
+            conn, batch_id, closes_new=len(fresh), closes_restated=len(restated),
+            earliest_restated=earliest,
+            earliest_changed=changed.min().date() if len(changed) else None,
+        )
     report.batch_id = batch_id
     report.closes_new = len(fresh)
     report.closes_restated = len(restated)

@@ -305,13 +305,22 @@ def write_revisions(conn: Connection, batch_id: int, file_name: str, restated: p
 
 
 def finish_batch(conn: Connection, batch_id: int, *, closes_new: int, closes_restated: int,
-                 earliest_restated: dt.date | None) -> None:
+                 earliest_restated: dt.date | None, earliest_changed: dt.date | None) -> None:
     conn.execute(
         ingest_batches.update()
         .where(ingest_batches.c.id == batch_id)
         .values(closes_new=closes_new, closes_restated=closes_restated,
-                earliest_restated=earliest_restated)
+                earliest_restated=earliest_restated, earliest_changed=earliest_changed)
     )
+
+
+def earliest_change_since(conn: Connection, batch_id: int) -> tuple[dt.date | None, int]:
+    """The first close date changed by any batch after `batch_id`, and the newest batch id."""
+    newest = conn.execute(select(func.max(ingest_batches.c.id))).scalar() or 0
+    first = conn.execute(
+        select(func.min(ingest_batches.c.earliest_changed)).where(ingest_batches.c.id > batch_id)
+    ).scalar()
+    return first, int(newest)
 
 
 @dataclass(frozen=True)
@@ -325,6 +334,7 @@ class BatchRow:
     closes_new: int
     closes_restated: int
     earliest_restated: dt.date | None
+    earliest_changed: dt.date | None
     status: str
     problems: str
     ingested_at: dt.datetime

@@ -36,10 +36,18 @@ class Store:
         return self.engine.dialect.name == "sqlite"
 
     @contextmanager
-    def begin(self) -> Iterator[Connection]:
-        """One transaction: everything inside commits together or not at all."""
-        with self.engine.begin() as conn:
-            yield conn
+    def begin(self, *, immediate: bool = False) -> Iterator[Connection]:
+        """One transaction: everything inside commits together or not at all.
+
+        `immediate` takes SQLite's write lock at the start (BEGIN IMMEDIATE), for a
+        read-then-write that must not interleave with another process; PostgreSQL gets
+        the same effect from the row locks the caller takes.
+        """
+        with self.engine.connect() as conn:
+            if immediate:
+                conn = conn.execution_options(comove_immediate=True)
+            with conn.begin():
+                yield conn
 
     @contextmanager
     def connect(self) -> Iterator[Connection]:
@@ -67,7 +75,8 @@ def _sqlite_engine(url: str) -> Engine:
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Connection) -> None:
-        conn.exec_driver_sql("BEGIN")
+        immediate = conn.get_execution_options().get("comove_immediate", False)
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
 
     return engine
 
