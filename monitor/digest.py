@@ -820,6 +820,7 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
         "matrix_tables": tables,
         "images": by_key,
         "cautions": cautions(ctx.parameters),
+        "chart_key": charts.ALERT_CHART_KEY,
     }
     html_template = environment.get_template("digest.html")
     html_files = html_template.render(common, image_src={k: v.filename for k, v in by_key.items()})
