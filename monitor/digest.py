@@ -670,7 +670,8 @@ def _slug(text: str) -> str:
 
 def _alert_alt(alert: AlertView) -> str:
     parts = [
-        f"Chart of {alert.measure} for {alert.pair} over the last year:",
+        f"Chart of {alert.measure} for {alert.pair} over "
+        f"{len(alert.history.dates) if alert.history else 0} days:",
         f"value {format_corr(alert.value)},",
         f"band {format_corr(alert.band_low)} to {format_corr(alert.band_high)}",
     ]
@@ -756,7 +757,9 @@ def _build_charts(
         if n < 2:
             tables.append(_MatrixTable(
                 heatmap.group, tuple(heatmap.symbols), (), None, None,
-                "One instrument only: no pairs to show.",
+                "One instrument only: no pairs to show."
+                if n == 1
+                else "No instruments: no pairs to show.",
             ))
             continue
         chart, ordered = charts.heatmap_chart(
