@@ -36,6 +36,7 @@ everything else touches only the targets with a streak, an open alert or a breac
 from __future__ import annotations
 
 import datetime
+import functools
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -47,6 +48,7 @@ import numpy.typing as npt
 from monitor._typing import Severity
 from monitor.rules.base import Rule
 from monitor.rules.inputs import Condition
+from monitor.rules.stats import two_sided_p
 
 EventKind = Literal["opened", "continuing", "cleared"]
 BoolArray = npt.NDArray[np.bool_]
@@ -63,7 +65,7 @@ class AlertKey(NamedTuple):
     opened: datetime.date
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)
 class AlertEvent:
     """Something that happened to one alert on one day.
 
@@ -166,7 +168,9 @@ class _RuleState:
         return self.columns[name]
 
 
+@functools.lru_cache(maxsize=4096)
 def _date(ordinal: int) -> datetime.date:
+    # Cached: a busy day's events share a handful of opened / first-breach dates.
     return datetime.date.fromordinal(int(ordinal))
 
 
@@ -403,18 +407,46 @@ class AlertBook:
         date: datetime.date,
         muted: BoolArray,
     ) -> list[AlertEvent]:
-        """Build the sparse events; the only per-target Python work of a step."""
+        """Build the sparse events; the only per-target Python work of a step.
+
+        Every figure is gathered for all event rows at once and turned into Python scalars
+        with ``tolist``, so the loop only assembles records.
+        """
         opening, reminding, clearing = changes
         happened = np.flatnonzero(opening | reminding | clearing)
+        if happened.size == 0:
+            return []
+        targets = rows[happened]
+        kinds: list[EventKind] = [
+            "opened" if o else "cleared" if c else "continuing"
+            for o, c in zip(opening[happened].tolist(), clearing[happened].tolist(), strict=True)
+        ]
+        z = condition.z[targets]
+        value = condition.value[targets]
+        value = np.where(np.isnan(value) & reminding[happened], state["last_value"][targets], value)
+        figures = zip(
+            targets.tolist(),
+            rule.targets.symbols_for(targets),
+            kinds,
+            value.tolist(),
+            condition.level[targets].tolist(),
+            condition.low[targets].tolist(),
+            condition.high[targets].tolist(),
+            condition.n[targets].tolist(),
+            z.tolist(),
+            two_sided_p(z).tolist(),
+            condition.reference[targets].tolist(),
+            state["peak_value"][targets].tolist(),
+            state["opened_date"][targets].tolist(),
+            state["first_date"][targets].tolist(),
+            state["peak_date"][targets].tolist(),
+            (state.steps + 1 - state["first_step"][targets]).tolist(),
+            (~muted[targets]).tolist(),
+            strict=True,
+        )
         events: list[AlertEvent] = []
-        for position in happened.tolist():
-            k = int(rows[position])
-            kind: EventKind = (
-                "opened" if opening[position] else "cleared" if clearing[position] else "continuing"
-            )
-            value = float(condition.value[k])
-            if math.isnan(value) and kind == "continuing":
-                value = float(state["last_value"][k])
+        for (k, symbols, kind, v, level, low, high, n, z_k, p_k, reference, peak, opened, first,
+             peak_day, held, announce) in figures:
             events.append(
                 AlertEvent(
                     event=kind,
@@ -422,22 +454,22 @@ class AlertBook:
                     rule_kind=rule.kind,
                     severity=rule.severity,
                     target=state.labels[k],
-                    symbols=rule.targets.symbols_of(k),
+                    symbols=symbols,
                     date=date,
-                    opened=_date(state["opened_date"][k]),
-                    first_breach=_date(state["first_date"][k]),
-                    value=value,
-                    level=float(condition.level[k]),
-                    low=float(condition.low[k]),
-                    high=float(condition.high[k]),
-                    n=float(condition.n[k]),
-                    z=float(condition.z[k]),
-                    p=float(condition.p[k]),
-                    reference=float(condition.reference[k]),
-                    peak_value=float(state["peak_value"][k]),
-                    peak_date=_date(state["peak_date"][k]),
-                    days_held=state.steps - int(state["first_step"][k]) + 1,
-                    announce=not bool(muted[k]),
+                    opened=_date(opened),
+                    first_breach=_date(first),
+                    value=v,
+                    level=level,
+                    low=low,
+                    high=high,
+                    n=n,
+                    z=z_k,
+                    p=p_k,
+                    reference=reference,
+                    peak_value=peak,
+                    peak_date=_date(peak_day),
+                    days_held=held,
+                    announce=announce,
                     reminder=kind == "continuing",
                 )
             )

@@ -288,7 +288,7 @@ def test_bad_default_measure_is_reported_on_the_rule_using_it() -> None:
     with pytest.raises(SpecError) as info:
         build({"name": "t", "kind": "level", "above": 0.7, "all": True},
               default_measure="rollng:63")
-    assert str(info.value).startswith("rules[0] (t).measure: default measure ")
+    assert str(info.value).startswith("rules[0] (t).measure (default): ")
 
 
 @pytest.mark.parametrize(
@@ -595,7 +595,11 @@ def test_shift_alert_opens_after_hold_days_and_clears_below_clear_z() -> None:
     ]
     z = [float(rule.evaluate(d).z[0]) for d in days]
     assert abs(z[0]) < 2 and z[1] > 3 and 2 < z[3] < 3 and abs(z[4]) < 2
-    assert summary(run(rule, days)) == [("opened", "KLV/ORMA", 2), ("cleared", "KLV/ORMA", 4)]
+    events = run(rule, days)
+    assert summary(events) == [("opened", "KLV/ORMA", 2), ("cleared", "KLV/ORMA", 4)]
+    opened = events[0]
+    assert (opened.z, opened.reference, opened.n) == (z[2], 0.3, 21.0)
+    assert opened.p == pytest.approx(math.erfc(abs(z[2]) / math.sqrt(2)), rel=2e-7)
 
 
 # --- jump ------------------------------------------------------------------------------

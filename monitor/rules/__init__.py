@@ -20,9 +20,10 @@ from monitor.rules.registry import (
     pairs_needed,
     rule_parameters,
 )
-from monitor.rules.shift import ShiftRule, fisher_difference, two_sided_p
+from monitor.rules.shift import ShiftRule
 from monitor.rules.sign import SignRule
 from monitor.rules.stale import StaleRule
+from monitor.rules.stats import fisher_difference, two_sided_p
 from monitor.rules.targets import GroupTargets, PairLayout, PairTargets, SymbolTargets, Targets
 
 __all__ = [

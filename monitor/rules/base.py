@@ -105,11 +105,11 @@ def read_measure(reader: TableReader, key: str, default_measure: str | None) -> 
     if text is None:
         if default_measure is None:
             raise reader.error(key, "missing required key (no default measure is configured)")
-        text, origin = default_measure, "default measure "
+        text, origin = default_measure, " (default)"
     try:
         return _check_measure(text)
     except SpecError as exc:
-        raise SpecError(f"{reader.where(key)}: {origin}{exc}") from None
+        raise SpecError(f"{reader.where(key)}{origin}: {exc}") from None
 
 
 @dataclass(frozen=True, eq=False, kw_only=True)

@@ -32,6 +32,7 @@ an input: a basket rule averages its group's pairs from ``measures`` itself.
 from __future__ import annotations
 
 import datetime
+import functools
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import TypeVar
@@ -40,6 +41,7 @@ import numpy as np
 import numpy.typing as npt
 
 from monitor._typing import Float1D
+from monitor.rules.stats import two_sided_p
 from monitor.rules.targets import IntArray, PairLayout
 
 BoolArray = npt.NDArray[np.bool_]
@@ -174,8 +176,9 @@ class Condition:
         0 (sign), ``days`` (stale).
     low, high, n : float array
         Confidence band and observation count of ``value``; NaN where not relevant.
-    z, p : float array
-        Shift statistic and its two-sided p-value; NaN for other kinds.
+    z : float array
+        Shift statistic; NaN for other kinds. Its two-sided p-value is the property ``p``,
+        computed on first use only, since the daily path rarely needs it for every pair.
     reference : float array
         What ``value`` is compared against: the long-window or previous-window correlation
         (shift), the value ``days`` ago (jump); NaN for other kinds.
@@ -193,7 +196,6 @@ class Condition:
     high: Float1D
     n: Float1D
     z: Float1D
-    p: Float1D
     reference: Float1D
     excess: Float1D
 
@@ -211,7 +213,6 @@ class Condition:
         high: npt.ArrayLike | None = None,
         n: npt.ArrayLike | None = None,
         z: npt.ArrayLike | None = None,
-        p: npt.ArrayLike | None = None,
         reference: npt.ArrayLike | None = None,
     ) -> Condition:
         """Assemble a condition, filling what is not relevant with NaN (no copies)."""
@@ -226,10 +227,14 @@ class Condition:
             high=_filled(high, size),
             n=_filled(n, size),
             z=_filled(z, size),
-            p=_filled(p, size),
             reference=_filled(reference, size),
             excess=excess,
         )
 
     def __len__(self) -> int:
         return int(self.value.shape[0])
+
+    @functools.cached_property
+    def p(self) -> Float1D:
+        """Two-sided p-value of ``z`` (P,); NaN where ``z`` is NaN."""
+        return two_sided_p(self.z)

@@ -292,21 +292,20 @@ def _fallback_parse(text: str) -> MeasureSpec:
 def _check_measure(text: str) -> MeasureSpec:
     """Validate a measure spec and return what the rules need of it.
 
-    The engine's ``parse_measure`` is the authority on the syntax: when it is importable it
-    is called first and its :class:`SpecError` propagates. The family, window and decay are
-    then read with the local minimal parser, which is also the whole check while the engine
-    is not available.
+    The engine's ``parse_measure`` is the authority on the syntax and on the canonical
+    spelling; its :class:`SpecError` propagates. Only if the engine cannot be imported does
+    the local minimal parser stand in.
 
     Raises
     ------
     SpecError
         The spec cannot be parsed, or its window is shorter than 3.
     """
-    canonical = "".join(text.split())
     try:
-        from monitor.engine import parse_measure  # type: ignore[attr-defined,unused-ignore]
+        from monitor.engine import parse_measure
     except ImportError:
-        parse_measure = None
-    if parse_measure is not None:
-        parse_measure(canonical)
-    return _fallback_parse(canonical)
+        return _fallback_parse("".join(text.split()))
+    measure = parse_measure(text)
+    return MeasureSpec(
+        text=measure.text, family=measure.kind, window=measure.window, decay=measure.lam
+    )

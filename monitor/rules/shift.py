@@ -25,68 +25,16 @@ from typing import ClassVar, Literal, cast
 
 import numpy as np
 
-from monitor._typing import Float1D
 from monitor.rules.base import MEASURE_PARAMETER, Rule, read_common, read_measure
 from monitor.rules.inputs import Condition, DayInputs
 from monitor.rules.params import Param, TableReader
+from monitor.rules.stats import fisher_difference
 from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
 
 RANK_VARIANCE_FACTOR = 1.06
 """Spearman's atanh variance relative to Pearson's (Fieller, Hartley & Pearson 1957)."""
 
-_R_LIMIT = 1.0 - 1e-12
-"""Correlations are clipped here so atanh stays finite for a perfectly tracking pair."""
-
 ShiftTest = Literal["nested", "adjacent"]
-
-
-def two_sided_p(z: Float1D) -> Float1D:
-    """Two-sided normal p-value erfc(|z|/sqrt 2), vectorised; NaN stays NaN.
-
-    numpy has no erfc and scipy is not a runtime dependency, so this uses the Chebyshev
-    fit ``erfcc`` of Press et al., Numerical Recipes (2nd ed., section 6.2; coefficients
-    typed from memory), fractional error below 1.2e-7 everywhere; the tests check it
-    against ``math.erfc``.
-    """
-    x = np.abs(z) / np.sqrt(2.0)
-    t = 1.0 / (1.0 + 0.5 * x)
-    poly = -0.82215223 + t * 0.17087277
-    for coefficient in (1.48851587, -1.13520398, 0.27886807, -0.18628806, 0.09678418,
-                        0.37409196, 1.00002368, -1.26551223):
-        poly = coefficient + t * poly
-    with np.errstate(under="ignore"):
-        return np.asarray(t * np.exp(-x * x + poly), dtype=np.float64)
-
-
-def fisher_difference(
-    r_1: Float1D, n_1: Float1D, r_2: Float1D, n_2: Float1D, *, nested: bool, factor: float = 1.0
-) -> Float1D:
-    """z statistic of the difference of two correlations (P,).
-
-    Parameters
-    ----------
-    r_1, n_1 : float arrays (P,)
-        First correlation and its (effective) count; for ``nested`` the short window.
-    r_2, n_2 : float arrays (P,)
-        Second correlation and count; for ``nested`` the long window containing the first.
-    nested : bool
-        Overlapping windows: variance 1/(n_1-3) - 1/(n_2-3); otherwise the sum.
-    factor : float
-        Multiplies the variance (1.06 for rank correlations).
-
-    Returns
-    -------
-    float array (P,)
-        NaN where a value is NaN, a count is 3 or less, or the variance is not positive.
-    """
-    with np.errstate(divide="ignore", invalid="ignore"):
-        inverse_1 = np.where(n_1 > 3, 1.0 / (n_1 - 3.0), np.nan)
-        inverse_2 = np.where(n_2 > 3, 1.0 / (n_2 - 3.0), np.nan)
-        variance = factor * (inverse_1 - inverse_2 if nested else inverse_1 + inverse_2)
-        variance = np.where(variance > 0, variance, np.nan)
-        z_1 = np.arctanh(np.clip(r_1, -_R_LIMIT, _R_LIMIT))
-        z_2 = np.arctanh(np.clip(r_2, -_R_LIMIT, _R_LIMIT))
-        return np.asarray((z_1 - z_2) / np.sqrt(variance), dtype=np.float64)
 
 
 @dataclass(frozen=True, eq=False, kw_only=True)
@@ -192,18 +140,19 @@ class ShiftRule(Rule):
             nested=self.long is not None, factor=self.factor,
         )
         size = np.abs(z)
-        known = np.isfinite(z)
+        breach = size > self.z_level
+        clear = size < self.clear_z
+        excess = np.subtract(size, self.z_level, out=size)
         return Condition.build(
-            breach=size > self.z_level,
-            clear=size < self.clear_z,
-            known=known,
+            breach=breach,
+            clear=clear,
+            known=np.isfinite(z),
             value=today.value,
             level=self.z_level,
-            excess=size - self.z_level,
+            excess=excess,
             low=today.low,
             high=today.high,
             n=today.n,
             z=z,
-            p=two_sided_p(z),
             reference=other.value,
         )

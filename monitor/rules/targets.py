@@ -107,6 +107,10 @@ class Targets:
         """Column indices of the instruments target ``k`` concerns."""
         raise NotImplementedError
 
+    def symbols_for(self, indices: IntArray) -> list[tuple[int, ...]]:
+        """``symbols_of`` for many targets (M,) at once."""
+        return [self.symbols_of(k) for k in indices.tolist()]
+
 
 @dataclass(frozen=True, eq=False, kw_only=True)
 class PairTargets(Targets):
@@ -116,6 +120,9 @@ class PairTargets(Targets):
 
     def symbols_of(self, k: int) -> tuple[int, ...]:
         return (int(self.pairs[k, 0]), int(self.pairs[k, 1]))
+
+    def symbols_for(self, indices: IntArray) -> list[tuple[int, ...]]:
+        return [(i, j) for i, j in self.pairs[indices].tolist()]
 
 
 @dataclass(frozen=True, eq=False, kw_only=True)

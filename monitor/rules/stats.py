@@ -1,0 +1,84 @@
+"""Vectorised statistics the rules share: Fisher z differences and normal p-values."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from monitor._typing import Float1D
+
+_R_LIMIT = 1.0 - 1e-12
+"""Correlations are clipped here so atanh stays finite for a perfectly tracking pair."""
+
+
+def two_sided_p(z: Float1D) -> Float1D:
+    """Two-sided normal p-value erfc(|z|/sqrt 2), vectorised; NaN stays NaN.
+
+    numpy has no erfc and scipy is not a runtime dependency, so this uses the Chebyshev
+    fit ``erfcc`` of Press et al., Numerical Recipes (2nd ed., section 6.2; coefficients
+    typed from memory), fractional error below 1.2e-7 everywhere; the tests check it
+    against ``math.erfc``.
+    """
+    x = np.abs(z) / np.sqrt(2.0)
+    t = 1.0 / (1.0 + 0.5 * x)
+    poly = -0.82215223 + t * 0.17087277
+    for coefficient in (1.48851587, -1.13520398, 0.27886807, -0.18628806, 0.09678418,
+                        0.37409196, 1.00002368, -1.26551223):
+        poly = coefficient + t * poly
+    with np.errstate(under="ignore"):
+        return np.asarray(t * np.exp(-x * x + poly), dtype=np.float64)
+
+
+def fisher_difference(
+    r_1: Float1D, n_1: Float1D, r_2: Float1D, n_2: Float1D, *, nested: bool, factor: float = 1.0
+) -> Float1D:
+    """z statistic of the difference of two correlations (P,).
+
+    Parameters
+    ----------
+    r_1, n_1 : float arrays (P,)
+        First correlation and its (effective) count; for ``nested`` the short window.
+    r_2, n_2 : float arrays (P,)
+        Second correlation and count; for ``nested`` the long window containing the first.
+    nested : bool
+        Overlapping windows: variance 1/(n_1-3) - 1/(n_2-3); otherwise the sum.
+    factor : float
+        Multiplies the variance (1.06 for rank correlations).
+
+    Returns
+    -------
+    float array (P,)
+        NaN where a value is NaN, a count is 3 or less, or the variance is not positive.
+
+    Notes
+    -----
+    atanh(a) - atanh(b) is computed as 0.5 * log1p(2 (a - b) / ((1 - a)(1 + b))), the same
+    quantity by exact algebra with one logarithm instead of two, accurate when a ~ b.
+    The work is done in place on a few fresh arrays because, at 10^5 pairs a day, each
+    temporary array costs more in page faults than in arithmetic.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        low_side = np.clip(r_1, -_R_LIMIT, _R_LIMIT)
+        high_side = np.clip(r_2, -_R_LIMIT, _R_LIMIT)
+        difference = np.subtract(low_side, high_side)
+        difference *= 2.0
+        np.subtract(1.0, low_side, out=low_side)
+        high_side += 1.0
+        low_side *= high_side
+        difference /= low_side
+        np.log1p(difference, out=difference)
+        difference *= 0.5
+        variance = np.subtract(n_1, 3.0)
+        np.reciprocal(variance, out=variance)
+        other = np.subtract(n_2, 3.0)
+        np.reciprocal(other, out=other)
+        if nested:
+            variance -= other
+        else:
+            variance += other
+        if factor != 1.0:
+            variance *= factor
+        invalid = ~((variance > 0) & (n_1 > 3) & (n_2 > 3))
+        np.sqrt(variance, out=variance)
+        difference /= variance
+    difference[invalid] = np.nan
+    return difference
