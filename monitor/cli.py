@@ -11,6 +11,7 @@ import argparse
 import datetime as dt
 import json
 import sys
+import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -169,6 +170,158 @@ def _instruments(args: argparse.Namespace) -> int:
 
     store = open_settings_store(load(args))
     print_frame(instrument_summary(store), args.format)
+    return 0
+
+
+# --- backfill ---------------------------------------------------------------------------
+
+
+def _backfill_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--start", type=_date, metavar="DATE",
+                        help="first business day to evaluate (default: the first with returns)")
+    parser.add_argument("--end", type=_date, metavar="DATE",
+                        help="last business day to evaluate (default: the last with closes)")
+    parser.add_argument("--rule", action="append", metavar="NAME",
+                        help="evaluate only this rule (repeatable)")
+    parser.add_argument("--force", action="store_true",
+                        help="replay from the first day even when the saved state is current")
+
+
+class ProgressLine:
+    """Days done, rate and ETA: a redrawn bar on a terminal, plain lines otherwise."""
+
+    def __init__(self, stream: Any = None) -> None:
+        self.stream = stream or sys.stderr
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.started = time.monotonic()
+        self.last_plain = -1.0
+
+    def __call__(self, done: int, total: int, day: dt.date) -> None:
+        elapsed = max(time.monotonic() - self.started, 1e-9)
+        rate = done / elapsed
+        eta = (total - done) / rate if rate > 0 else float("nan")
+        share = done / total if total else 1.0
+        text = f"{done}/{total} days through {day}  {rate:,.0f} days/s  ETA {eta:,.0f} s"
+        if self.tty:
+            filled = int(share * 30)
+            self.stream.write(f"\r[{'#' * filled}{'.' * (30 - filled)}] {text} ")
+            if done >= total:
+                self.stream.write("\n")
+        elif share - self.last_plain >= 0.1 or done >= total:
+            self.last_plain = share
+            self.stream.write(f"progress: {text}\n")
+        self.stream.flush()
+
+
+@command("backfill", "Evaluate the rules over a past range of business days and store the "
+         "alerts (idempotent; an interrupted run resumes).", _backfill_args)
+def _backfill(args: argparse.Namespace) -> int:
+    from monitor.pipeline import evaluate_range, open_settings_store
+
+    settings = load(args)
+    store = open_settings_store(settings)
+    report = evaluate_range(store, settings, args.start, args.end, rule_names=args.rule,
+                            progress=ProgressLine(), force=args.force)
+    if report.already_done:
+        print(f"already evaluated through {report.resumed_from} with these rules and closes; "
+              "nothing changed (--force replays it)")
+        return 0
+    resumed = f", resumed after {report.resumed_from}" if report.resumed_from else ""
+    print(f"evaluated {report.start} to {report.end}: {report.days_written} days written"
+          f"{resumed}; {report.opened} opened, {report.cleared} cleared, "
+          f"{report.reminders} reminders (run {report.run_id})")
+    return 0
+
+
+# --- alerts, ack, mute, series -------------------------------------------------------------
+
+
+def _alerts_args(parser: argparse.ArgumentParser) -> None:
+    which = parser.add_mutually_exclusive_group()
+    which.add_argument("--open", action="store_true", help="open alerts only (the default)")
+    which.add_argument("--all", action="store_true", help="open, cleared and withdrawn alerts")
+    parser.add_argument("--since", type=_date, metavar="DATE",
+                        help="alerts opened, cleared or still open on or after DATE")
+    parser.add_argument("--pair", metavar="A/B", help="alerts of one pair")
+    parser.add_argument("--rule", metavar="NAME", help="alerts of one rule")
+    parser.add_argument("--format", choices=("table", "csv", "json"), default="table")
+
+
+@command("alerts", "List alerts with state, severity, rule, pair, dates, values and who "
+         "acknowledged them.", _alerts_args)
+def _alerts(args: argparse.Namespace) -> int:
+    from monitor.pipeline import list_alerts, open_settings_store
+
+    settings = load(args)
+    frame = list_alerts(open_settings_store(settings), settings, open_only=not args.all,
+                        since=args.since, pair=args.pair, rule=args.rule)
+    if args.format == "table":
+        for col in ("value", "peak", "level"):
+            frame[col] = frame[col].map(lambda v: "-" if pd.isna(v) else f"{v:+.3f}")
+    print_frame(frame, args.format)
+    return 0
+
+
+def _ack_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("id", type=int, help="alert id (see comove alerts)")
+    parser.add_argument("--by", required=True, metavar="NAME", help="who acknowledges")
+    parser.add_argument("--note", default="", metavar="TEXT", help="what was decided or seen")
+
+
+@command("ack", "Acknowledge an alert: it stays open but leaves the needs-attention list "
+         "and is no longer reminded.", _ack_args)
+def _ack(args: argparse.Namespace) -> int:
+    from monitor.pipeline import acknowledge, open_settings_store
+
+    settings = load(args)
+    alert = acknowledge(open_settings_store(settings), settings, args.id, by=args.by,
+                        note=args.note)
+    print(f"alert {alert.id} ({alert.rule}, {alert.target}, opened {alert.opened_on}) "
+          f"acknowledged by {alert.acknowledged_by}")
+    return 0
+
+
+def _mute_args(parser: argparse.ArgumentParser) -> None:
+    what = parser.add_mutually_exclusive_group(required=True)
+    what.add_argument("--rule", metavar="NAME", help="mute every alert of this rule")
+    what.add_argument("--pair", metavar="A/B", help="mute this pair (or group or symbol "
+                      "target) under every rule")
+    parser.add_argument("--until", type=_date, required=True, metavar="DATE",
+                        help="last day of the mute (inclusive)")
+    parser.add_argument("--reason", required=True, metavar="TEXT", help="kept with the mute")
+
+
+@command("mute", "Mute a rule or a pair until a date: conditions are still recorded, just "
+         "not announced.", _mute_args)
+def _mute(args: argparse.Namespace) -> int:
+    from monitor.pipeline import mute, open_settings_store
+
+    settings = load(args)
+    mute_id = mute(open_settings_store(settings), settings, rule=args.rule, pair=args.pair,
+                   until=args.until, reason=args.reason)
+    print(f"mute {mute_id}: {args.rule or args.pair} until {args.until}")
+    return 0
+
+
+def _series_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("a", metavar="A", help="first instrument")
+    parser.add_argument("b", metavar="B", help="second instrument")
+    parser.add_argument("--measure", required=True, metavar="SPEC",
+                        help="e.g. rolling:63, ewma:hl=21, ewma:lambda=0.94,mean=zero, rank:63")
+    parser.add_argument("--start", type=_date, metavar="DATE")
+    parser.add_argument("--end", type=_date, metavar="DATE")
+    parser.add_argument("--format", choices=("table", "csv", "json"), default="table")
+
+
+@command("series", "Print one pair's measure from the store: date, value, band low, band "
+         "high and n.", _series_args)
+def _series(args: argparse.Namespace) -> int:
+    from monitor.pipeline import open_settings_store, series
+
+    settings = load(args)
+    frame = series(open_settings_store(settings), settings, args.a, args.b, args.measure,
+                   start=args.start, end=args.end)
+    print_frame(frame, args.format)
     return 0
 
 

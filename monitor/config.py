@@ -155,6 +155,62 @@ class InstrumentSettings:
     calendar: str = setting("", "Free note on the instrument's trading calendar or close time.")
 
 
+def _level(value: Any) -> str | None:
+    return None if 0.5 <= value < 1 else "a confidence level between 0.5 and 1 (e.g. 0.95)"
+
+
+def _measure_list(value: Any) -> str | None:
+    from monitor.engine import parse_measure
+    from monitor.errors import SpecError
+
+    for text in value:
+        try:
+            parse_measure(text)
+        except SpecError as exc:
+            return f"a list of measure specs ({exc})"
+    return None if value else "a non-empty list of measure specs"
+
+
+def _measure(value: Any) -> str | None:
+    return _measure_list([value])
+
+
+@dataclass(frozen=True)
+class CorrelationSettings:
+    """[correlation]: measures shown and the confidence band."""
+
+    level: float = setting(
+        0.95, "Confidence level of every Fisher z band (and of `confident` level rules).",
+        kind=(int, float), check=_level,
+    )
+    measures: tuple[str, ...] = setting(
+        ["rolling:63", "ewma:hl=21"],
+        "Measures shown on the pair pages and offered by `comove series` by default; the "
+        "first is also the measure of the 'largest changes' table in the digest.",
+        kind=list, item=str, check=_measure_list,
+    )
+    default_measure: str = setting(
+        "rolling:63", "Measure of a rule that does not name one.", check=_measure,
+    )
+    movers_days: int = setting(
+        5, "Business days over which the digest's 'largest changes' are measured.",
+        kind=int, check=_at_least(1),
+    )
+    gauge_days: int = setting(
+        21, "Business days over which a group average's change is shown (about a month).",
+        kind=int, check=_at_least(1),
+    )
+    history_days: int = setting(
+        252, "Business days of history drawn in the digest's alert charts (about a year).",
+        kind=int, check=_at_least(20),
+    )
+
+
+@dataclass(frozen=True)
+class RuleSettings:
+    """[[rules]]: validated by monitor.rules (each kind declares its own keys)."""
+
+
 @dataclass(frozen=True)
 class Section:
     """One section of the file: its dataclass and whether it is an array of tables."""
@@ -170,6 +226,8 @@ SECTIONS: dict[str, Section] = {
     "returns": Section(ReturnsSettings),
     "sources": Section(SourcesSettings),
     "instruments": Section(InstrumentSettings, array=True),
+    "correlation": Section(CorrelationSettings),
+    "rules": Section(RuleSettings, array=True, raw=True),
 }
 """Every section comove reads. Later features register theirs with `register_section`."""
 
@@ -208,6 +266,14 @@ class Settings:
 
     def section(self, name: str) -> Any:
         return self.sections[name]
+
+    @property
+    def correlation(self) -> CorrelationSettings:
+        return self.sections["correlation"]
+
+    @property
+    def rule_tables(self) -> tuple[dict[str, Any], ...]:
+        return self.sections["rules"]
 
     @property
     def inbox(self) -> Path:
@@ -306,7 +372,7 @@ def build_section(cls: type, raw: Any, path: str) -> Any:
         if check is not None:
             problem = check(value)
             if problem:
-                raise ConfigError(f"{path}.{name}: {value!r} is not {problem}")
+                raise ConfigError(f"{path}.{name}: {raw[name]!r} is not {problem}")
         values[name] = value
     return cls(**values)
 
