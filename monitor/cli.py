@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import json
+import os
 import sys
 import time
 from collections.abc import Callable, Sequence
@@ -220,8 +221,10 @@ def _backfill(args: argparse.Namespace) -> int:
 
     settings = load(args)
     store = open_settings_store(settings)
+    # COMOVE_COMMIT_DAYS commits more often (the tests kill a backfill between commits).
+    commit_days = int(os.environ.get("COMOVE_COMMIT_DAYS", "60"))
     report = evaluate_range(store, settings, args.start, args.end, rule_names=args.rule,
-                            progress=ProgressLine(), force=args.force)
+                            progress=ProgressLine(), force=args.force, commit_days=commit_days)
     if report.already_done:
         print(f"already evaluated through {report.resumed_from} with these rules and closes; "
               "nothing changed (--force replays it)")
