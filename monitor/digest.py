@@ -226,7 +226,10 @@ class AlertView:
 
     @property
     def pair(self) -> str:
-        """The pair as "A / B" by symbol."""
+        """The pair as "A / B" by symbol; a group or instrument target (basket and stale
+        rules) leaves `b` empty and shows its own name."""
+        if not self.b.symbol:
+            return self.a.symbol
         return f"{self.a.symbol} / {self.b.symbol}"
 
     @property
