@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import datetime
 import math
+from collections.abc import Mapping
 
 import numpy as np
 import pytest
@@ -18,6 +19,7 @@ from monitor.rules import (
     RULE_KINDS,
     DayInputs,
     MeasureDay,
+    MeasureLike,
     PairLayout,
     Rule,
     build_rules,
@@ -69,7 +71,7 @@ def measure_day(
 
 def day_for(
     rule: Rule,
-    measures: dict[str, MeasureDay],
+    measures: Mapping[str, MeasureLike],
     *,
     offset: int = 0,
     lagged: dict[tuple[str, int], MeasureDay] | None = None,
@@ -442,6 +444,33 @@ def test_full_matrix_and_per_pair_inputs_give_the_same_condition() -> None:
     np.testing.assert_array_equal(from_matrix.value, matrix[pairs[:, 0], pairs[:, 1]])
     np.testing.assert_array_equal(from_pairs.value, from_matrix.value)
     np.testing.assert_array_equal(from_pairs.breach, from_matrix.breach)
+
+
+class BandlessMeasure:
+    """A measure whose confidence band must not be read (it would be costly to compute)."""
+
+    def __init__(self, value: list[float]) -> None:
+        self.value = np.asarray(value, dtype=np.float64)
+        self.n = np.full(self.value.shape, 63.0)
+        self.stale = np.zeros(self.value.shape, dtype=bool)
+
+    @property
+    def low(self) -> np.ndarray:
+        raise AssertionError("band read")
+
+    @property
+    def high(self) -> np.ndarray:
+        raise AssertionError("band read")
+
+
+def test_rules_read_the_band_only_when_they_need_it() -> None:
+    plain = one(kind="level", above=0.7, pairs=["KLV/ORMA", "KLV/VESK"])
+    confident = one(kind="level", above=0.7, confident=True, pairs=["KLV/ORMA", "KLV/VESK"])
+    quiet = {"rolling:63": BandlessMeasure([0.2, 0.3])}
+    book = AlertBook()
+    assert book.step(plain, plain.evaluate(day_for(plain, quiet)), START) == []
+    with pytest.raises(AssertionError, match="band read"):
+        confident.evaluate(day_for(confident, quiet))
 
 
 def test_layout_missing_a_rule_pair_is_a_wiring_error() -> None:

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from monitor.rules.base import Rule
 from monitor.rules.basket import BasketRule
-from monitor.rules.inputs import Condition, DayInputs, MeasureDay
+from monitor.rules.inputs import Condition, DayInputs, MeasureDay, MeasureLike, take_pairs
 from monitor.rules.jump import JumpRule
 from monitor.rules.level import LevelRule
 from monitor.rules.params import MeasureSpec, Param
@@ -35,6 +35,7 @@ __all__ = [
     "JumpRule",
     "LevelRule",
     "MeasureDay",
+    "MeasureLike",
     "MeasureSpec",
     "PairLayout",
     "PairTargets",
@@ -51,5 +52,6 @@ __all__ = [
     "measures_needed",
     "pairs_needed",
     "rule_parameters",
+    "take_pairs",
     "two_sided_p",
 ]

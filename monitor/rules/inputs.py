@@ -16,9 +16,13 @@ Before the run, the pipeline asks the rules what they read
 
 Then for every business day it builds one :class:`DayInputs`:
 
-* ``measures[text]`` — a :class:`MeasureDay` whose arrays are either (P_all,) aligned to
-  ``layout.pairs`` (one :class:`~monitor.rules.targets.PairLayout` built once per run and
-  reused every day) or full (N, N) matrices (``layout`` may then be None).
+* ``measures[text]`` — anything with ``value``, ``n``, ``low``, ``high`` and ``stale``
+  arrays (:class:`MeasureLike`: the engine's per-day result as it comes, or a
+  :class:`MeasureDay`), either (P_all,) aligned to ``layout.pairs`` (one
+  :class:`~monitor.rules.targets.PairLayout` built once per run and reused every day) or
+  full (N, N) matrices (``layout`` may then be None). Rules read ``low`` / ``high`` only
+  when they need the band (``confident`` levels, ``sign``) or when an event reports it, so
+  a lazily computed band is not forced on quiet days.
 * ``lagged[(text, lag)]`` — the same, as it stood ``lag`` business days earlier; before the
   history is that long, pass :meth:`MeasureDay.missing` (all NaN), never leave it out.
 * ``days_without_close`` / ``days_unchanged`` (N,) — for ``stale`` rules: business days
@@ -35,7 +39,7 @@ import datetime
 import functools
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import TypeVar
+from typing import Protocol
 
 import numpy as np
 import numpy.typing as npt
@@ -45,12 +49,40 @@ from monitor.rules.stats import two_sided_p
 from monitor.rules.targets import IntArray, PairLayout
 
 BoolArray = npt.NDArray[np.bool_]
-_Item = TypeVar("_Item", bound=np.generic)
+
+
+class MeasureLike(Protocol):
+    """One measure on one day: arrays of one shape, (P_all,) or (N, N)."""
+
+    @property
+    def value(self) -> Float1D:
+        """Correlation in [-1, 1]; NaN where it cannot be computed."""
+        ...
+
+    @property
+    def n(self) -> Float1D:
+        """Observation count, or Kish effective count for EWMA."""
+        ...
+
+    @property
+    def low(self) -> Float1D:
+        """Lower end of the confidence band; NaN where not available."""
+        ...
+
+    @property
+    def high(self) -> Float1D:
+        """Upper end of the confidence band; NaN where not available."""
+        ...
+
+    @property
+    def stale(self) -> BoolArray:
+        """Zero-variance window (``value`` is then NaN)."""
+        ...
 
 
 @dataclass(frozen=True)
 class MeasureDay:
-    """One measure on one day, for every computed pair.
+    """A plain :class:`MeasureLike` holding its arrays.
 
     Attributes
     ----------
@@ -76,36 +108,58 @@ class MeasureDay:
         nan = np.broadcast_to(np.float64(np.nan), shape)
         return cls(value=nan, n=nan, low=nan, high=nan, stale=np.broadcast_to(False, shape))
 
-    def take(self, pairs: IntArray, layout: PairLayout | None) -> MeasureDay:
-        """The rows of ``pairs`` (M, 2): arrays (M,).
 
-        Raises
-        ------
-        ValueError
-            Per-pair arrays without a layout, or a pair missing from the layout.
-        """
-        if self.value.ndim == 2:
-            # (N, N) matrices are C-contiguous, so ravel is a view and i*N + j its index.
-            flat = pairs[:, 0] * self.value.shape[1] + pairs[:, 1]
-            return self._pick(flat, matrix=True)
-        if layout is None:
-            raise ValueError("per-pair measure arrays need DayInputs.layout")
-        rows = layout.positions(pairs)
-        if rows is None:
-            return self
-        return self._pick(rows, matrix=False)
+class PickedMeasure:
+    """Some pairs (M,) of a :class:`MeasureLike`, each array gathered on first use."""
 
-    def _pick(self, rows: IntArray, *, matrix: bool) -> MeasureDay:
-        def pick(array: npt.NDArray[_Item]) -> npt.NDArray[_Item]:
-            return np.take(np.ravel(array) if matrix else array, rows)
+    def __init__(self, source: MeasureLike, rows: IntArray, *, matrix: bool) -> None:
+        self._source = source
+        self._rows = rows
+        self._matrix = matrix
 
-        return MeasureDay(
-            value=pick(self.value),
-            n=pick(self.n),
-            low=pick(self.low),
-            high=pick(self.high),
-            stale=pick(self.stale),
-        )
+    def _pick(self, array: npt.NDArray[np.generic]) -> npt.NDArray[np.generic]:
+        return np.take(np.ravel(array) if self._matrix else array, self._rows)
+
+    @functools.cached_property
+    def value(self) -> Float1D:
+        return np.asarray(self._pick(self._source.value), dtype=np.float64)
+
+    @functools.cached_property
+    def n(self) -> Float1D:
+        return np.asarray(self._pick(self._source.n), dtype=np.float64)
+
+    @functools.cached_property
+    def low(self) -> Float1D:
+        return np.asarray(self._pick(self._source.low), dtype=np.float64)
+
+    @functools.cached_property
+    def high(self) -> Float1D:
+        return np.asarray(self._pick(self._source.high), dtype=np.float64)
+
+    @functools.cached_property
+    def stale(self) -> BoolArray:
+        return np.asarray(self._pick(self._source.stale), dtype=bool)
+
+
+def take_pairs(measure: MeasureLike, pairs: IntArray, layout: PairLayout | None) -> MeasureLike:
+    """The rows of ``pairs`` (M, 2) of a measure, as arrays (M,).
+
+    Returns ``measure`` itself when its arrays already follow exactly these pairs.
+
+    Raises
+    ------
+    ValueError
+        Per-pair arrays without a layout, or a pair missing from the layout.
+    """
+    value = measure.value
+    if value.ndim == 2:
+        # (N, N) matrices are C-contiguous, so ravel is a view and i*N + j its index.
+        flat = pairs[:, 0] * value.shape[1] + pairs[:, 1]
+        return PickedMeasure(measure, flat, matrix=True)
+    if layout is None:
+        raise ValueError("per-pair measure arrays need DayInputs.layout")
+    rows = layout.positions(pairs)
+    return measure if rows is None else PickedMeasure(measure, rows, matrix=False)
 
 
 @dataclass(frozen=True)
@@ -116,34 +170,34 @@ class DayInputs:
     ----------
     date : datetime.date
         The business day evaluated.
-    measures : mapping of str to MeasureDay
+    measures : mapping of str to MeasureLike
         Keyed by canonical measure text.
     layout : PairLayout or None
         The pair list per-pair arrays follow; None when all arrays are (N, N).
-    lagged : mapping of (str, int) to MeasureDay
+    lagged : mapping of (str, int) to MeasureLike
         ``(measure text, lag)`` -> the measure ``lag`` business days earlier.
     days_without_close, days_unchanged : float array (N,) or None
         Inputs of ``stale`` rules; NaN for an instrument with no close yet.
     """
 
     date: datetime.date
-    measures: Mapping[str, MeasureDay]
+    measures: Mapping[str, MeasureLike]
     layout: PairLayout | None = None
-    lagged: Mapping[tuple[str, int], MeasureDay] = field(default_factory=dict)
+    lagged: Mapping[tuple[str, int], MeasureLike] = field(default_factory=dict)
     days_without_close: Float1D | None = None
     days_unchanged: Float1D | None = None
 
-    def measure(self, text: str, pairs: IntArray) -> MeasureDay:
+    def measure(self, text: str, pairs: IntArray) -> MeasureLike:
         """Measure ``text`` today at ``pairs`` (M, 2); KeyError when not supplied."""
         if text not in self.measures:
             raise KeyError(f"DayInputs.measures has no {text!r}")
-        return self.measures[text].take(pairs, self.layout)
+        return take_pairs(self.measures[text], pairs, self.layout)
 
-    def lagged_measure(self, text: str, lag: int, pairs: IntArray) -> MeasureDay:
+    def lagged_measure(self, text: str, lag: int, pairs: IntArray) -> MeasureLike:
         """Measure ``text`` ``lag`` business days ago at ``pairs``; KeyError when absent."""
         if (text, lag) not in self.lagged:
             raise KeyError(f"DayInputs.lagged has no ({text!r}, {lag})")
-        return self.lagged[(text, lag)].take(pairs, self.layout)
+        return take_pairs(self.lagged[(text, lag)], pairs, self.layout)
 
 
 def _filled(values: npt.ArrayLike | None, size: int) -> Float1D:
@@ -174,17 +228,24 @@ class Condition:
     level : float array
         The opening level (level, basket), z threshold (shift), ``delta`` (jump),
         0 (sign), ``days`` (stale).
-    low, high, n : float array
-        Confidence band and observation count of ``value``; NaN where not relevant.
-    z : float array
-        Shift statistic; NaN for other kinds. Its two-sided p-value is the property ``p``,
-        computed on first use only, since the daily path rarely needs it for every pair.
-    reference : float array
-        What ``value`` is compared against: the long-window or previous-window correlation
-        (shift), the value ``days`` ago (jump); NaN for other kinds.
     excess : float array
         How far beyond the opening level, positive when breached; the alert book keeps the
         value at the largest excess as the alert's peak.
+    z : float array
+        Shift statistic; NaN for other kinds.
+    reference : float array
+        What ``value`` is compared against: the long-window or previous-window correlation
+        (shift), the value ``days`` ago (jump); NaN for other kinds.
+    source : MeasureLike or None
+        The measure ``low``, ``high`` and ``n`` are read from.
+    count : float array or None
+        ``n`` when it is not the measure's (basket: pairs averaged).
+
+    Notes
+    -----
+    ``low``, ``high`` and ``n`` (confidence band and observation count of ``value``) and
+    ``p`` (two-sided p-value of ``z``) are properties computed on first use: the daily path
+    needs them only at the few targets with an event.
     """
 
     breach: BoolArray
@@ -192,12 +253,11 @@ class Condition:
     known: BoolArray
     value: Float1D
     level: Float1D
-    low: Float1D
-    high: Float1D
-    n: Float1D
+    excess: Float1D
     z: Float1D
     reference: Float1D
-    excess: Float1D
+    source: MeasureLike | None = None
+    count: Float1D | None = None
 
     @classmethod
     def build(
@@ -209,8 +269,7 @@ class Condition:
         value: Float1D,
         level: npt.ArrayLike,
         excess: Float1D,
-        low: npt.ArrayLike | None = None,
-        high: npt.ArrayLike | None = None,
+        source: MeasureLike | None = None,
         n: npt.ArrayLike | None = None,
         z: npt.ArrayLike | None = None,
         reference: npt.ArrayLike | None = None,
@@ -223,16 +282,32 @@ class Condition:
             known=known,
             value=value,
             level=_filled(level, size),
-            low=_filled(low, size),
-            high=_filled(high, size),
-            n=_filled(n, size),
+            excess=excess,
             z=_filled(z, size),
             reference=_filled(reference, size),
-            excess=excess,
+            source=source,
+            count=None if n is None else _filled(n, size),
         )
 
     def __len__(self) -> int:
         return int(self.value.shape[0])
+
+    @functools.cached_property
+    def low(self) -> Float1D:
+        """Lower end of the confidence band of ``value`` (P,); NaN where not relevant."""
+        return _filled(None if self.source is None else self.source.low, len(self))
+
+    @functools.cached_property
+    def high(self) -> Float1D:
+        """Upper end of the confidence band of ``value`` (P,); NaN where not relevant."""
+        return _filled(None if self.source is None else self.source.high, len(self))
+
+    @functools.cached_property
+    def n(self) -> Float1D:
+        """Observation count behind ``value`` (P,); NaN where not relevant."""
+        if self.count is not None:
+            return self.count
+        return _filled(None if self.source is None else self.source.n, len(self))
 
     @functools.cached_property
     def p(self) -> Float1D:

@@ -92,8 +92,6 @@ class JumpRule(Rule):
             value=today.value,
             level=self.delta,
             excess=signed - self.delta,
-            low=today.low,
-            high=today.high,
-            n=today.n,
+            source=today,
             reference=before.value,
         )

@@ -19,7 +19,7 @@ import numpy as np
 
 from monitor._typing import Float1D
 from monitor.rules.base import MEASURE_PARAMETER, Rule, read_common, read_measure
-from monitor.rules.inputs import Condition, DayInputs
+from monitor.rules.inputs import Condition, DayInputs, MeasureLike
 from monitor.rules.params import Param, TableReader
 from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
 
@@ -92,8 +92,7 @@ def threshold_condition(
     value: Float1D,
     *,
     test: Float1D | None = None,
-    low: Float1D | None = None,
-    high: Float1D | None = None,
+    source: MeasureLike | None = None,
     n: Float1D | None = None,
 ) -> Condition:
     """Compare values (P,) with a threshold.
@@ -107,8 +106,10 @@ def threshold_condition(
     test : float array (P,), optional
         What must be beyond the level to open (the band edge for ``confident``);
         defaults to ``value``.
-    low, high, n : float array (P,), optional
-        Reported alongside.
+    source : MeasureLike, optional
+        The measure the band and count are reported from.
+    n : float array (P,), optional
+        Count reported when it is not the measure's.
     """
     tested = value if test is None else test
     known = np.isfinite(value) & np.isfinite(tested)
@@ -127,8 +128,7 @@ def threshold_condition(
         value=value,
         level=threshold.level,
         excess=excess,
-        low=low,
-        high=high,
+        source=source,
         n=n,
     )
 
@@ -183,5 +183,5 @@ class LevelRule(Rule):
         if self.confident:
             test = today.low if self.threshold.side == "above" else today.high
         return threshold_condition(
-            self.threshold, today.value, test=test, low=today.low, high=today.high, n=today.n
+            self.threshold, today.value, test=test, source=today
         )

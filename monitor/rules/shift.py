@@ -150,9 +150,7 @@ class ShiftRule(Rule):
             value=today.value,
             level=self.z_level,
             excess=excess,
-            low=today.low,
-            high=today.high,
-            n=today.n,
+            source=today,
             z=z,
             reference=other.value,
         )

@@ -70,7 +70,5 @@ class SignRule(Rule):
             value=today.value,
             level=0.0,
             excess=excess,
-            low=today.low,
-            high=today.high,
-            n=today.n,
+            source=today,
         )
