@@ -206,9 +206,49 @@ class CorrelationSettings:
     )
 
 
+def _port(value: Any) -> str | None:
+    return None if 0 < value < 65536 else "a TCP port between 1 and 65535"
+
+
+def _env_name(value: Any) -> str | None:
+    if value == "" or re.match(r"^[A-Za-z_][A-Za-z0-9_]*$", value):
+        return None
+    return "the name of an environment variable (letters, digits, '_')"
+
+
+@dataclass(frozen=True)
+class DigestSettings:
+    """[digest]: the evening email and where rendered digests are kept."""
+
+    recipients: tuple[str, ...] = setting(
+        [], "Addresses the digest is sent to; empty: the digest is rendered but not sent.",
+        kind=list, item=str,
+    )
+    sender: str = setting("comove@localhost", "From address of the digest.")
+    smtp_host: str = setting("localhost", "Host name of the SMTP server that relays the digest.")
+    smtp_port: int = setting(587, "SMTP port (587 for starttls, 465 for tls).", kind=int,
+                             check=_port)
+    security: str = setting("starttls", "starttls, tls (implicit) or none.",
+                            choices=("starttls", "tls", "none"))
+    username: str = setting("", "SMTP login name; empty: no login.")
+    password_env: str = setting(
+        "", "Name of the environment variable that holds the SMTP password (a password in "
+        "this file is refused).", check=_env_name,
+    )
+    attempts: int = setting(3, "Tries per send before the digest is left failed in the "
+                            "outbox.", kind=int, check=_at_least(1))
+    backoff_seconds: float = setting(2.0, "Wait before the second try; doubles each time.",
+                                     kind=(int, float), check=_positive)
+    folder: str = setting(
+        "digests", "Folder of rendered digests, one sub-folder per date; relative to the "
+        "settings file's folder.",
+    )
+
+
 @dataclass(frozen=True)
 class RuleSettings:
-    """[[rules]]: validated by monitor.rules (each kind declares its own keys)."""
+    """[[rules]] and [schedule]: validated by their own modules (monitor.rules declares each
+    rule kind's keys, monitor.scheduler the schedule's)."""
 
 
 @dataclass(frozen=True)
@@ -228,6 +268,8 @@ SECTIONS: dict[str, Section] = {
     "instruments": Section(InstrumentSettings, array=True),
     "correlation": Section(CorrelationSettings),
     "rules": Section(RuleSettings, array=True, raw=True),
+    "digest": Section(DigestSettings),
+    "schedule": Section(RuleSettings, raw=True),
 }
 """Every section comove reads. Later features register theirs with `register_section`."""
 
@@ -274,6 +316,10 @@ class Settings:
     @property
     def rule_tables(self) -> tuple[dict[str, Any], ...]:
         return self.sections["rules"]
+
+    @property
+    def digest(self) -> DigestSettings:
+        return self.sections["digest"]
 
     @property
     def inbox(self) -> Path:
@@ -342,6 +388,11 @@ def build_section(cls: type, raw: Any, path: str) -> Any:
     if not isinstance(raw, dict):
         raise ConfigError(f"{path}: expected a table, got {raw!r}")
     fields = {f.name: f for f in dataclasses.fields(cls)}
+    if "password" in raw and "password_env" in fields:
+        raise ConfigError(
+            f"{path}.password: a password in the settings file is refused; put it in an "
+            f"environment variable and name that variable in {path}.password_env"
+        )
     for key in raw:
         if key not in fields:
             raise ConfigError(f"{path}.{key}: unknown key; {_suggest(key, list(fields))}")

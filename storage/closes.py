@@ -345,6 +345,13 @@ def list_batches(conn: Connection) -> list[BatchRow]:
     return [BatchRow(**row._mapping) for row in rows]
 
 
+def last_close_date(conn: Connection, on_or_before: dt.date | None = None) -> dt.date | None:
+    query = select(func.max(closes.c.date))
+    if on_or_before is not None:
+        query = query.where(closes.c.date <= on_or_before)
+    return conn.execute(query).scalar()
+
+
 def count_closes(conn: Connection) -> int:
     return int(conn.execute(select(func.count()).select_from(closes)).scalar() or 0)
 
