@@ -26,8 +26,10 @@ An alert is identified by ``(rule name, target label, opened date)``, which a re
 the same days reproduces exactly. :meth:`AlertBook.snapshot` exports the state as plain
 lists (JSON-ready) keyed by target label, and :meth:`AlertBook.restore` resumes from it,
 so a daily run continues where the previous one stopped and gives the same events as a
-full replay. Only targets with a streak or an open alert are stored; targets a changed
-configuration no longer watches are dropped on restore.
+full replay. Only targets with a streak or an open alert are stored. Open alerts of
+targets a changed configuration no longer watches are listed in :attr:`AlertBook.dropped`
+and those of a removed rule are returned by :meth:`AlertBook.forget`, so the pipeline can
+close them in the store.
 
 Per step the work over all P_rule targets is one ``flatnonzero`` of the breach mask;
 everything else touches only the targets with a streak, an open alert or a breach today.
@@ -193,6 +195,35 @@ class AlertBook:
     def __init__(self) -> None:
         self._states: dict[str, _RuleState] = {}
         self._pending: dict[str, dict[str, Any]] = {}
+        self._dropped: list[AlertKey] = []
+
+    @property
+    def dropped(self) -> list[AlertKey]:
+        """Open alerts left behind on restore because their rule no longer watches the target.
+
+        They will never clear on their own; the pipeline closes them in the store.
+        """
+        return list(self._dropped)
+
+    def forget(self, rule_name: str) -> list[AlertKey]:
+        """Drop a rule the configuration no longer has; return its open alerts' keys."""
+        saved = self._pending.pop(rule_name, None)
+        state = self._states.pop(rule_name, None)
+        if state is not None:
+            rows = state.active[state["is_open"][state.active]]
+            return [
+                AlertKey(rule_name, state.labels[k], _date(state["opened_date"][k]))
+                for k in rows.tolist()
+            ]
+        if saved is None:
+            return []
+        return [
+            AlertKey(rule_name, label, datetime.date.fromisoformat(opened))
+            for label, is_open, opened in zip(
+                saved["target"], saved["is_open"], saved["opened_date"], strict=True
+            )
+            if is_open
+        ]
 
     # --- state ------------------------------------------------------------------------
 
@@ -218,6 +249,11 @@ class AlertBook:
         state.last_date = None if last is None else datetime.date.fromisoformat(last).toordinal()
         positions = [rule.targets.position(label) for label in saved["target"]]
         keep = [k for k, position in enumerate(positions) if position is not None]
+        self._dropped += [
+            AlertKey(rule.name, label, datetime.date.fromisoformat(saved["opened_date"][k]))
+            for k, label in enumerate(saved["target"])
+            if positions[k] is None and saved["is_open"][k]
+        ]
         rows = np.array([positions[k] for k in keep], dtype=np.int64)
         for name in _INT_COLUMNS:
             state[name][rows] = [int(saved[name][k]) for k in keep]

@@ -220,6 +220,19 @@ def test_restore_follows_target_labels_when_the_targets_change() -> None:
     assert [a.key.target for a in resumed.open_alerts(after)] == ["KLV/VESK"]
     events = resumed.step(after, after.evaluate(inputs(after, [0.1, 0.5], 1)), day(1))
     assert [(e.event, e.target, e.opened) for e in events] == [("cleared", "KLV/VESK", day(0))]
+    # ORMA/VESK is no longer watched: its open alert is handed back to be closed.
+    assert resumed.dropped == [AlertKey("hedge-break", "ORMA/VESK", day(0))]
+
+
+def test_forgetting_a_removed_rule_returns_its_open_alerts() -> None:
+    rule = level_rule(pairs=["KLV/ORMA", "KLV/VESK"])
+    book = AlertBook()
+    book.step(rule, rule.evaluate(inputs(rule, [0.9, 0.1], 0)), day(0))
+    restored = AlertBook.restore(json.loads(json.dumps(book.snapshot())))
+    expected = [AlertKey("hedge-break", "KLV/ORMA", day(0))]
+    assert book.forget("hedge-break") == expected
+    assert restored.forget("hedge-break") == expected  # never stepped since the restore
+    assert restored.snapshot()["rules"] == {} and restored.forget("hedge-break") == []
 
 
 def _replay_world(days: int, seed: int) -> tuple[list[Rule], list[DayInputs], np.ndarray]:
