@@ -763,3 +763,18 @@ def test_stale_rule_without_its_inputs_is_a_wiring_error() -> None:
     rule = build({"name": "t", "kind": "stale", "all": True})[0]
     with pytest.raises(KeyError, match="days_without_close"):
         rule.evaluate(DayInputs(date=START, measures={}))
+
+
+def test_rules_and_alerts_import_no_storage_rendering_or_scheduling() -> None:
+    """DESIGN.md dependency rule: monitor.rules and monitor.alerts are pure."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, monitor.rules, monitor.alerts; "
+        "print(sorted({m.split('.')[0] for m in sys.modules} & "
+        "{'storage', 'sqlalchemy', 'jinja2', 'matplotlib', 'apscheduler'}))"
+    )
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                            check=True)
+    assert result.stdout.strip() == "[]"
