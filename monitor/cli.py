@@ -328,6 +328,76 @@ def _series(args: argparse.Namespace) -> int:
     return 0
 
 
+# --- digest and the daily run ------------------------------------------------------------
+
+
+def _digest_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--as-of", type=_date, metavar="DATE",
+                        help="digest date (default: the latest business day with closes)")
+    parser.add_argument("--out", type=Path, metavar="DIR",
+                        help="write digest.html with its PNGs, digest.txt and digest.eml here")
+    parser.add_argument("--send", action="store_true",
+                        help="store the digest in the outbox and send it by email")
+    parser.add_argument("--resend", action="store_true",
+                        help="with --send: send again even if this date's digest was sent")
+
+
+@command("digest", "Render the evening digest for a date (HTML, text, charts, .eml) and "
+         "optionally send it.", _digest_args)
+def _digest(args: argparse.Namespace) -> int:
+    from monitor.mailer import MailError
+    from monitor.pipeline import (
+        latest_close_date,
+        open_settings_store,
+        render_digest_files,
+        send_digest,
+    )
+
+    settings = load(args)
+    store = open_settings_store(settings)
+    as_of = args.as_of or latest_close_date(store)
+    if not args.send:
+        outcome = render_digest_files(store, settings, as_of, out_dir=args.out)
+        print(f"{outcome.subject}\n  {outcome.paths.html}\n  {outcome.paths.eml}")
+        return 0
+    try:
+        outcome = send_digest(store, settings, as_of, resend=args.resend)
+    except MailError as exc:
+        print(f"Error: {exc}; the digest stays in the outbox and the next run retries it",
+              file=sys.stderr)
+        return 1
+    if outcome.status == "already sent":
+        print(f"the digest for {as_of} was already sent (outbox {outcome.outbox_id}); "
+              "--resend sends it again")
+    else:
+        print(f"sent: {outcome.subject} ({outcome.attempts} attempt(s))")
+    return 0
+
+
+def _run_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--once", action="store_true",
+                        help="run the daily job now instead of on the schedule")
+    parser.add_argument("--as-of", type=_date, metavar="DATE",
+                        help="with --once: the as-of date (default: today in the "
+                             "schedule's zone)")
+    parser.add_argument("--force", action="store_true",
+                        help="with --once: rerun a day already done (no duplicate alerts "
+                             "or emails)")
+    parser.add_argument("--no-catch-up", action="store_true",
+                        help="do not run missed business days first")
+
+
+@command("run", "Run the daily job on its schedule (closes in, rules, digest, pages), or "
+         "once with --once.", _run_args)
+def _run(args: argparse.Namespace) -> int:
+    from monitor.pipeline import open_settings_store, run_daily_command
+
+    settings = load(args)
+    store = open_settings_store(settings)
+    return run_daily_command(store, settings, once=args.once, as_of=args.as_of,
+                             force=args.force, catch_up=not args.no_catch_up)
+
+
 # --- bench ------------------------------------------------------------------------------
 
 BENCHES = {

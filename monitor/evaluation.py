@@ -144,18 +144,18 @@ def replay(
                      level=plan.level)
         for text in plan.measures
     }
-    history: dict[str, deque[MeasureDay]] = {
+    history: dict[str, deque[Any]] = {
         text: deque(maxlen=plan.max_lag + 1) for text in plan.measures
     }
     size = len(plan.pairs)
     for t in range(warm_t, stop_t):
-        today: dict[str, MeasureDay] = {}
+        today: dict[str, Any] = {}
         for text, days in streams.items():
+            # The engine's day result goes to the rules as it is: its band is computed only
+            # when a rule reads it. Each chunk is a fresh array, so earlier days stay valid.
             result = next(days)
-            day = MeasureDay(value=result.value, n=result.n, low=result.low, high=result.high,
-                             stale=result.stale)
-            history[text].append(day)
-            today[text] = day
+            history[text].append(result)
+            today[text] = result
         if t < from_t:
             continue
         lagged = {}

@@ -8,10 +8,13 @@ from __future__ import annotations
 
 import datetime as dt
 import difflib
+import math
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -37,6 +40,7 @@ from monitor.rules import Rule, build_rules
 from storage import Store, open_store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
+from storage import outbox as outbox_store
 from storage import runs as runs_store
 
 NEIGHBOUR_DAYS = 31
@@ -562,3 +566,555 @@ def series(store: Store, settings: Settings, a: str, b: str, measure: str, *,
     if start is not None:
         frame = frame.loc[frame["date"] >= start]
     return frame.reset_index(drop=True)
+
+
+# --- the digest ---------------------------------------------------------------------------
+
+STALE_DAYS_NOTED = 3
+"""Business days without a new close after which the digest lists an instrument as stale
+(common practice for daily data; a `stale` rule can alert on its own threshold)."""
+
+
+@dataclass
+class DigestOutcome:
+    """A rendered (and perhaps sent) digest."""
+
+    as_of: dt.date
+    folder: Path
+    paths: Any
+    subject: str
+    outbox_id: int | None = None
+    status: str = "rendered"  # rendered | sent | failed | already sent
+    attempts: int = 0
+    error: str = ""
+
+
+def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date,
+                 now: dt.datetime, names: dict[str, str]) -> tuple[list[Any], str]:
+    from monitor.digest import DataIssueView
+
+    issues: list[DataIssueView] = []
+    if panel.empty:
+        return issues, "no closes in the store"
+    without, unchanged = stale_inputs(panel)
+    row = len(panel) - 1
+    last_dates = {s: panel[s].last_valid_index() for s in panel.columns}
+    for k, symbol in enumerate(panel.columns):
+        gap = without[row, k]
+        last = last_dates[symbol]
+        if np.isfinite(gap) and gap >= STALE_DAYS_NOTED and last is not None:
+            issues.append(DataIssueView("stale", symbol, last.date(),
+                                        f"no new close for {int(gap)} business days"))
+        elif np.isfinite(gap) and gap >= 1 and last is not None:
+            issues.append(DataIssueView("missing", symbol, day, "no close on this day; last "
+                                        f"close {last.date()}"))
+        if np.isfinite(unchanged[row, k]) and unchanged[row, k] >= 5 and gap == 0:
+            issues.append(DataIssueView("stale", symbol, day, "close unchanged for "
+                                        f"{int(unchanged[row, k])} business days"))
+    recent = pd.Timestamp(day) - pd.Timedelta(days=10)
+    with store.connect() as conn:
+        suspects = closes_store.list_suspects(conn)
+        revisions = closes_store.list_revisions(conn)
+    for r in suspects.itertuples():
+        if recent <= pd.Timestamp(r.date) <= pd.Timestamp(day):
+            issues.append(DataIssueView(
+                "suspect", r.symbol, r.date, f"close {r.close:g} after {r.previous_close:g} "
+                f"(log return {r.log_return:+.3f}); accepted, please check"))
+    week_ago = now - dt.timedelta(days=7)
+    for r in revisions.itertuples():
+        revised = r.revised_at if r.revised_at.tzinfo else r.revised_at.replace(tzinfo=dt.UTC)
+        if week_ago <= revised <= now:
+            issues.append(DataIssueView("restated", r.symbol, r.date,
+                                        f"close restated {r.old_close:g} -> {r.new_close:g} "
+                                        f"from {Path(r.source_file).name}"))
+    attention = ""
+    if day < as_of and as_of.weekday() < 5:
+        attention = (f"No closes for {as_of}: the latest closes are from {day}. "
+                     "Check the data feed before reading the numbers below.")
+    elif any(i.kind in ("stale", "missing") for i in issues):
+        count = len({i.symbol for i in issues if i.kind in ("stale", "missing")})
+        attention = f"{count} instrument(s) have stale or missing closes; see Data quality."
+    del names
+    return issues, attention
+
+
+def digest_context(store: Store, settings: Settings, as_of: dt.date,
+                   now: dt.datetime | None = None) -> Any:
+    """The digest's context for `as_of` from the store (see monitor.digest_build)."""
+    from monitor.digest_build import AlertFacts, DigestInputs, build_context
+
+    now = now or dt.datetime.now(dt.UTC)
+    symbols = universe(store, settings)
+    plan = build_plan(settings, symbols)
+    panel = read_closes(store, symbols, None, as_of)
+    r = settings.returns
+    returns = closes_to_returns(panel, kind=r.kind, horizon=r.horizon,  # type: ignore[arg-type]
+                                fill_limit=r.fill_limit)
+    if returns.empty:
+        raise ComoveError(f"no returns on or before {as_of}: ingest closes first")
+    day = returns.index[-1].date()
+    names = {i.symbol: i.name for i in settings.instruments}
+    with store.connect() as conn:
+        rows = alerts_store.list_alerts(conn, since=day)
+        today_events = alerts_store.events_for(conn, date=day)
+    by_alert: dict[int, dict[str, Any]] = {}
+    for event in today_events:
+        by_alert[event["alert_id"]] = event
+    facts = [
+        AlertFacts(
+            id=a.id, rule=a.rule, target=a.target, opened_on=a.opened_on,
+            first_breach_on=a.first_breach_on, state=a.state, cleared_on=a.cleared_on,
+            severity=a.severity, rule_kind=a.rule_kind,
+            announced=bool(by_alert.get(a.id, {}).get("announce", a.announced)),
+            acknowledged_by=a.acknowledged_by, acknowledged_at=a.acknowledged_at,
+            acknowledged_note=a.acknowledged_note,
+            reminded_today=by_alert.get(a.id, {}).get("event") == "continuing",
+            event_today=by_alert.get(a.id),
+        )
+        for a in rows
+        if a.rule in plan.rule_names and a.opened_on <= day
+    ]
+    issues, attention = _data_issues(store, panel, day, as_of, now, names)
+    c = settings.correlation
+    inputs = DigestInputs(
+        desk=settings.desk.name, as_of=as_of, generated_at=now, returns=returns,
+        names=names, groups=settings.groups, rules={rule.name: rule for rule in plan.rules},
+        alerts=facts, monitored_pairs=plan.pairs, measures=c.measures, return_kind=r.kind,
+        horizon=r.horizon, level=c.level, movers_days=c.movers_days, gauge_days=c.gauge_days,
+        history_days=c.history_days, data_issues=issues, attention=attention,
+        data_through=panel.index[-1].date(),
+    )
+    return build_context(inputs)
+
+
+def digest_folder(settings: Settings, as_of: dt.date) -> Path:
+    return settings.resolve_path(settings.digest.folder) / as_of.isoformat()
+
+
+def render_digest_files(store: Store, settings: Settings, as_of: dt.date,
+                        out_dir: Path | None = None, now: dt.datetime | None = None
+                        ) -> DigestOutcome:
+    """Render the digest for `as_of` into a folder: digest.html with PNGs, .txt and .eml."""
+    from monitor.digest import build_message, render_digest, write_digest
+
+    now = now or dt.datetime.now(dt.UTC)
+    ctx = digest_context(store, settings, as_of, now)
+    rendered = render_digest(ctx)
+    d = settings.digest
+    message = build_message(rendered, sender=d.sender, recipients=list(d.recipients) or
+                            [d.sender], date=now, message_id_domain=_domain(d.sender))
+    folder = out_dir or digest_folder(settings, as_of)
+    paths = write_digest(rendered, folder, message=message)
+    return DigestOutcome(as_of=as_of, folder=Path(folder), paths=paths,
+                         subject=rendered.subject)
+
+
+def _domain(address: str) -> str:
+    return address.rpartition("@")[2] or "localhost"
+
+
+def send_digest(
+    store: Store,
+    settings: Settings,
+    as_of: dt.date,
+    *,
+    resend: bool = False,
+    environ: dict[str, str] | None = None,
+    sleep: Callable[[float], None] = time.sleep,
+    now: dt.datetime | None = None,
+) -> DigestOutcome:
+    """Render, store in the outbox, then send the digest for `as_of`.
+
+    A date whose digest was sent is not sent again unless `resend`. A digest already in
+    the outbox as pending or failed is sent as stored (so a retry sends what was rendered
+    when the day was evaluated). A failed send stays in the outbox with its error and
+    raises MailError; the next call retries it.
+    """
+    import os
+
+    from monitor.mailer import MailError, SmtpSettings, send_message
+
+    now = now or dt.datetime.now(dt.UTC)
+    d = settings.digest
+    if not d.recipients:
+        raise ComoveError("digest.recipients is empty: nothing to send (comove digest --out "
+                          "DIR renders it without sending)")
+    env = dict(os.environ) if environ is None else environ
+    password = None
+    if d.username:
+        if not d.password_env:
+            raise ConfigError("digest.password_env: name the environment variable that holds "
+                              "the SMTP password for digest.username")
+        password = env.get(d.password_env)
+        if password is None:
+            raise ConfigError(f"digest.password_env: environment variable {d.password_env} is "
+                              "not set")
+    with store.connect() as conn:
+        sent = outbox_store.sent_for(conn, as_of)
+        waiting = [row for row in outbox_store.for_date(conn, as_of)
+                   if row.status in ("pending", "failed")]
+    if sent is not None and not resend:
+        return DigestOutcome(as_of=as_of, folder=Path(sent.folder), paths=None,
+                             subject=sent.subject, outbox_id=sent.id, status="already sent")
+    if waiting and not resend:
+        row = waiting[-1]
+        outbox_id, raw, subject, folder = row.id, row.message, row.subject, Path(row.folder)
+        paths = None
+    else:
+        outcome = render_digest_files(store, settings, as_of, now=now)
+        raw = outcome.paths.eml.read_bytes()
+        subject, folder, paths = outcome.subject, outcome.folder, outcome.paths
+        with store.begin() as conn:
+            outbox_id = outbox_store.add(conn, as_of=as_of, subject=subject,
+                                         recipients=list(d.recipients), folder=str(folder),
+                                         message=raw, now=now)
+    message = _parse_eml(raw)
+    smtp = SmtpSettings(host=d.smtp_host, port=d.smtp_port,
+                        security=d.security,  # type: ignore[arg-type]
+                        username=d.username or None, password_env=d.password_env or None)
+    try:
+        result = send_message(message, smtp, password=password, attempts=d.attempts,
+                              backoff_seconds=d.backoff_seconds, sleep=sleep)
+    except MailError as exc:
+        with store.begin() as conn:
+            outbox_store.mark_failed(conn, outbox_id, attempts=exc.attempts, error=str(exc))
+        raise
+    with store.begin() as conn:
+        outbox_store.mark_sent(conn, outbox_id, attempts=result.attempts, now=now)
+    return DigestOutcome(as_of=as_of, folder=folder, paths=paths, subject=subject,
+                         outbox_id=outbox_id, status="sent", attempts=result.attempts)
+
+
+def _parse_eml(raw: bytes) -> Any:
+    from email import message_from_bytes
+    from email.policy import SMTP
+
+    return message_from_bytes(raw, policy=SMTP)
+
+
+# --- the daily run ------------------------------------------------------------------------
+
+LEASE_NAME = "evaluation"
+"""One lease for everything that evaluates: the daily run and shell backfills."""
+LEASE_TTL = dt.timedelta(minutes=30)
+FEED_RULE = "data-feed"
+"""Built-in data-quality alert: a scheduled run date with no new closes at run time."""
+
+
+class LeaseHeld(ComoveError):
+    """Another process holds the evaluation lease."""
+
+
+def lease_owner() -> str:
+    import os
+    import socket
+    import uuid
+
+    return f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+
+
+@contextmanager
+def evaluation_lease(store: Store, *, wait_seconds: float = 0.0, owner: str | None = None,
+                     clock: Callable[[], dt.datetime] | None = None) -> Iterator[str]:
+    """Hold the evaluation lease for the block; wait up to `wait_seconds` for a holder to
+    finish, then stop with LeaseHeld naming it. An expired lease (its process died) is
+    taken over."""
+    me = owner or lease_owner()
+    now = clock or (lambda: dt.datetime.now(dt.UTC))
+    deadline = time.monotonic() + wait_seconds
+    while True:
+        with store.begin(immediate=True) as conn:
+            holder = runs_store.take_lease(conn, LEASE_NAME, me, now=now(), ttl=LEASE_TTL)
+        if holder is None:
+            break
+        if time.monotonic() >= deadline:
+            raise LeaseHeld(f"another comove process ({holder.owner}) is evaluating until "
+                            f"{holder.expires:%Y-%m-%d %H:%M} UTC at the latest; try again "
+                            "when it is done")
+        time.sleep(0.5)
+    try:
+        yield me
+    finally:
+        with store.begin(immediate=True) as conn:
+            runs_store.release_lease(conn, LEASE_NAME, me)
+
+
+def renew(store: Store, owner: str) -> None:
+    with store.begin(immediate=True) as conn:
+        runs_store.renew_lease(conn, LEASE_NAME, owner, now=dt.datetime.now(dt.UTC),
+                               ttl=LEASE_TTL)
+
+
+@dataclass
+class CollectReport:
+    accepted: list[IngestReport] = field(default_factory=list)
+    rejected: list[tuple[Path, str]] = field(default_factory=list)
+
+
+def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = None,
+                  now: dt.datetime | None = None) -> CollectReport:
+    """Ingest every file in the inbox (each all-or-nothing), then move it to `processed/`
+    or to `rejected/` with a `.problems.txt` report beside it."""
+    inbox = settings.inbox
+    inbox.mkdir(parents=True, exist_ok=True)
+    report = CollectReport()
+    files = sorted(p for p in inbox.iterdir()
+                   if p.is_file() and (p.name.endswith(".csv") or p.name.endswith(".csv.gz")))
+    for path in files:
+        try:
+            result = ingest_file(store, settings, path, today=today, now=now)
+        except IngestError as exc:
+            target = _move(path, inbox / "rejected")
+            lines = [str(exc), *exc.problems]
+            (target.parent / f"{target.name}.problems.txt").write_text(
+                "\n".join(lines) + "\n", encoding="utf-8")
+            report.rejected.append((target, str(exc)))
+            continue
+        _move(path, inbox / "processed")
+        report.accepted.append(result)
+    return report
+
+
+def _move(path: Path, folder: Path) -> Path:
+    folder.mkdir(parents=True, exist_ok=True)
+    target = folder / path.name
+    if target.exists():
+        stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%S%f")
+        target = folder / f"{stamp}-{path.name}"
+    path.replace(target)
+    return target
+
+
+@dataclass
+class DailyReport:
+    as_of: dt.date
+    status: str  # done | already done | failed
+    run_id: int | None = None
+    collected: CollectReport | None = None
+    evaluation: EvaluationReport | None = None
+    digest: DigestOutcome | None = None
+    feed_problem: str = ""
+    pages: Any = None
+    message: str = ""
+
+
+def _feed_alert(store: Store, settings: Settings, as_of: dt.date, last_close: dt.date | None,
+                ) -> str:
+    """Open (or keep open) the data-feed alert when `as_of` has no closes; clear it when
+    closes are there again. Returns the problem text, or '' when the feed is fine."""
+    with store.begin() as conn:
+        open_alerts = [a for a in alerts_store.list_alerts(conn, open_only=True, rule=FEED_RULE)]
+        if last_close is not None and last_close >= as_of:
+            for alert in open_alerts:
+                alerts_store.write_events(conn, [_feed_event(alert.opened_on, as_of, "cleared",
+                                                             last_close)])
+                alerts_store.refresh_states(conn, [alert.id])
+            return ""
+        problem = (f"no new closes for {as_of} by run time; latest closes are from "
+                   f"{last_close or 'never'}")
+        opened = open_alerts[0].opened_on if open_alerts else as_of
+        event = "continuing" if open_alerts else "opened"
+        alerts_store.delete_events_on(conn, [FEED_RULE], as_of)
+        ids = alerts_store.write_events(conn, [_feed_event(opened, as_of, event, last_close)])
+        alerts_store.refresh_states(conn, ids)
+    return problem
+
+
+def _feed_event(opened: dt.date, day: dt.date, event: str,
+                last_close: dt.date | None) -> alerts_store.EventRow:
+    held = (day - opened).days + 1
+    gap = float((day - last_close).days) if last_close else math.nan
+    return alerts_store.EventRow(
+        rule=FEED_RULE, target="all", opened_on=opened, first_breach_on=opened,
+        rule_kind="stale", severity="critical", measure="", event=event, date=day, value=gap,
+        level=1.0, low=math.nan, high=math.nan, n=math.nan, z=math.nan, p=math.nan,
+        reference=math.nan, peak_value=gap, peak_on=day, days_held=held, announce=True)
+
+
+def run_daily(
+    store: Store,
+    settings: Settings,
+    as_of: dt.date,
+    *,
+    force: bool = False,
+    send: bool = True,
+    pages_dir: Path | None = None,
+    now: dt.datetime | None = None,
+    environ: dict[str, str] | None = None,
+    sleep: Callable[[float], None] = time.sleep,
+    wait_seconds: float = 0.0,
+) -> DailyReport:
+    """The daily job: lease, collect the inbox, evaluate, digest (outbox, send), pages,
+    ledger. Idempotent: a second run for a done as-of date changes nothing unless `force`.
+    """
+    moment = now or dt.datetime.now(dt.UTC)
+    with store.connect() as conn:
+        done = [r for r in runs_store.list_runs(conn, kind="daily", as_of=as_of, status="done")]
+    if done and not force:
+        return DailyReport(as_of=as_of, status="already done", run_id=done[-1].id,
+                           message=f"the daily run for {as_of} is already done (run "
+                                   f"{done[-1].id}); --force reruns it")
+    with evaluation_lease(store, wait_seconds=wait_seconds) as owner:
+        with store.begin() as conn:
+            run_id = runs_store.start_run(conn, kind="daily", as_of=as_of, range_start=None,
+                                          params_hash="", now=moment)
+        report = DailyReport(as_of=as_of, status="running", run_id=run_id)
+        try:
+            report.collected = collect_inbox(store, settings, today=as_of, now=moment)
+            renew(store, owner)
+            with store.connect() as conn:
+                last = closes_store.last_close_date(conn, as_of)
+            report.feed_problem = _feed_alert(store, settings, as_of, last)
+            if last is not None:
+                report.evaluation = evaluate_range(store, settings, None, as_of, kind="evaluation",
+                                                   now=lambda: dt.datetime.now(dt.UTC))
+            renew(store, owner)
+            if last is not None:
+                if send and settings.digest.recipients:
+                    report.digest = send_digest(store, settings, as_of, resend=force,
+                                                environ=environ, sleep=sleep, now=moment)
+                else:
+                    report.digest = render_digest_files(store, settings, as_of, now=moment)
+            if pages_dir is not None:
+                report.pages = build_pages(store, settings, pages_dir, now=moment)
+        except Exception as exc:
+            with store.begin() as conn:
+                runs_store.finish_run(conn, run_id, status="failed", now=dt.datetime.now(dt.UTC),
+                                      counts=_daily_counts(report),
+                                      error=f"{type(exc).__name__}: {exc}")
+            raise
+        report.status = "done"
+        with store.begin() as conn:
+            runs_store.finish_run(conn, run_id, status="done", now=dt.datetime.now(dt.UTC),
+                                  counts=_daily_counts(report))
+    return report
+
+
+def _daily_counts(report: DailyReport) -> dict[str, object]:
+    counts: dict[str, object] = {}
+    if report.collected is not None:
+        counts["files_accepted"] = len(report.collected.accepted)
+        counts["files_rejected"] = len(report.collected.rejected)
+        counts["closes_new"] = sum(r.closes_new for r in report.collected.accepted)
+    if report.evaluation is not None:
+        counts.update({f"evaluation_{k}": v for k, v in report.evaluation.counts().items()})
+    if report.digest is not None:
+        counts["digest"] = report.digest.status
+    if report.feed_problem:
+        counts["feed_problem"] = report.feed_problem
+    return counts
+
+
+def last_completed_daily(store: Store) -> dt.date | None:
+    with store.connect() as conn:
+        done = runs_store.list_runs(conn, kind="daily", status="done")
+    return max((r.as_of for r in done), default=None)
+
+
+def build_pages(store: Store, settings: Settings, out_dir: Path,
+                now: dt.datetime | None = None) -> Any:
+    """Rebuild the history pages (see monitor.pages)."""
+    raise ComoveError("history pages are not available yet")
+
+
+def latest_close_date(store: Store) -> dt.date:
+    with store.connect() as conn:
+        last = closes_store.last_close_date(conn)
+    if last is None:
+        raise ComoveError("the store has no closes yet: comove ingest FILE first")
+    return last
+
+
+def schedule_of(settings: Settings) -> Any:
+    from monitor.scheduler import parse_schedule
+
+    return parse_schedule(settings.section("schedule"), desk_timezone=settings.desk.timezone,
+                          base_dir=settings.base_dir)
+
+
+def pages_folder(settings: Settings) -> Path:
+    return settings.resolve_path("pages")
+
+
+def run_days(store: Store, settings: Settings, as_of: dt.date, *, force: bool = False,
+             catch_up: bool = True, log: Callable[[str], None] = print) -> list[DailyReport]:
+    """Run every missed scheduled day since the last completed run (each with its own
+    ledger row and its own digest, oldest first), then `as_of`."""
+    from monitor.scheduler import business_days_between
+
+    schedule = schedule_of(settings)
+    days = [as_of]
+    last = last_completed_daily(store)
+    if catch_up and last is not None and last < as_of:
+        days = business_days_between(schedule, last, as_of)
+        if as_of not in days:
+            days.append(as_of)
+    reports = []
+    for day in days:
+        report = run_daily(store, settings, day, force=force and day == as_of,
+                           pages_dir=pages_folder(settings))
+        reports.append(report)
+        log(_describe_daily(report))
+    return reports
+
+
+def _describe_daily(report: DailyReport) -> str:
+    if report.status == "already done":
+        return report.message
+    parts = [f"daily run {report.run_id} for {report.as_of}: {report.status}"]
+    if report.collected is not None:
+        parts.append(f"{len(report.collected.accepted)} file(s) ingested, "
+                     f"{len(report.collected.rejected)} rejected")
+    if report.feed_problem:
+        parts.append(f"DATA: {report.feed_problem}")
+    if report.evaluation is not None:
+        e = report.evaluation
+        parts.append(f"{e.opened} opened, {e.cleared} cleared")
+    if report.digest is not None:
+        parts.append(f"digest {report.digest.status}: {report.digest.folder}")
+    return "; ".join(parts)
+
+
+def run_daily_command(store: Store, settings: Settings, *, once: bool, as_of: dt.date | None,
+                      force: bool, catch_up: bool) -> int:
+    """`comove run`: once now, or the scheduler (catching up missed days at start)."""
+    import logging
+
+    from monitor.scheduler import run_scheduler, setup_logging
+
+    log_dir = (Path(store.engine.url.database).parent if store.is_sqlite and
+               store.engine.url.database else settings.base_dir)
+    logger = setup_logging(log_dir)
+    schedule = schedule_of(settings)
+    if once:
+        day = as_of or dt.datetime.now(schedule.zone).date()
+        run_days(store, settings, day, force=force, catch_up=catch_up, log=logger.info)
+        return 0
+
+    def job(day: dt.date) -> object:
+        return run_days(store, settings, day, catch_up=True, log=logger.info)
+
+    if catch_up:
+        today = dt.datetime.now(schedule.zone).date()
+        last = last_completed_daily(store)
+        if last is not None:
+            from monitor.scheduler import business_days_between, previous_fire_time
+
+            fired = previous_fire_time(schedule, dt.datetime.now(schedule.zone))
+            through = fired.date() if fired else today
+            missed = business_days_between(schedule, last, through)
+            if missed:
+                logger.info("catching up %d missed day(s): %s", len(missed),
+                            ", ".join(map(str, missed)))
+                run_days(store, settings, missed[-1], catch_up=True, log=logger.info)
+    jobstore = _jobstore_url(store, settings)
+    logging.getLogger("comove").info("job store: %s", jobstore.split("@")[-1])
+    run_scheduler(schedule, job, jobstore_url=jobstore, logger=logger)
+    return 0
+
+
+def _jobstore_url(store: Store, settings: Settings) -> str:
+    if store.is_sqlite and store.engine.url.database:
+        path = Path(store.engine.url.database)
+        return f"sqlite:///{path.with_name(path.stem + '-schedule.sqlite')}"
+    return store.engine.url.render_as_string(hide_password=False)
