@@ -235,6 +235,10 @@ class DigestSettings:
         "", "Name of the environment variable that holds the SMTP password (a password in "
         "this file is refused).", check=_env_name,
     )
+    ca_file: str = setting(
+        "", "PEM file of certificate authorities to trust for the SMTP server (a private "
+        "relay); empty: the system's.",
+    )
     attempts: int = setting(3, "Tries per send before the digest is left failed in the "
                             "outbox.", kind=int, check=_at_least(1))
     backoff_seconds: float = setting(2.0, "Wait before the second try; doubles each time.",

@@ -772,9 +772,15 @@ def send_digest(
     smtp = SmtpSettings(host=d.smtp_host, port=d.smtp_port,
                         security=d.security,  # type: ignore[arg-type]
                         username=d.username or None, password_env=d.password_env or None)
+    context = None
+    if d.ca_file:
+        import ssl
+
+        context = ssl.create_default_context(cafile=str(settings.resolve_path(d.ca_file)))
     try:
         result = send_message(message, smtp, password=password, attempts=d.attempts,
-                              backoff_seconds=d.backoff_seconds, sleep=sleep)
+                              backoff_seconds=d.backoff_seconds, sleep=sleep,
+                              ssl_context=context)
     except MailError as exc:
         with store.begin() as conn:
             outbox_store.mark_failed(conn, outbox_id, attempts=exc.attempts, error=str(exc))

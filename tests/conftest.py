@@ -104,3 +104,39 @@ def write_settings(tmp_path: Path) -> Callable[..., Settings]:
 @pytest.fixture
 def settings(store_url: str, write_settings: Callable[..., Settings]) -> Settings:
     return write_settings(store_url)
+
+
+class RecordingRelay:
+    """A plain SMTP server in the test process (aiosmtpd) that keeps what it receives."""
+
+    def __init__(self) -> None:
+        import socket
+
+        with socket.socket() as probe:
+            probe.bind(("127.0.0.1", 0))
+            self.port = int(probe.getsockname()[1])
+        self.messages: list[bytes] = []
+        self.controller = None
+
+    async def handle_DATA(self, server: object, session: object, envelope: object) -> str:
+        self.messages.append(envelope.original_content or envelope.content)  # type: ignore[attr-defined]
+        return "250 2.0.0 Accepted"
+
+    def start(self) -> None:
+        from aiosmtpd.controller import Controller
+
+        self.controller = Controller(self, hostname="127.0.0.1", port=self.port)
+        self.controller.start()  # type: ignore[attr-defined]
+
+    def stop(self) -> None:
+        if self.controller is not None:
+            self.controller.stop()  # type: ignore[attr-defined]
+            self.controller = None
+
+
+@pytest.fixture
+def relay() -> Iterator[RecordingRelay]:
+    server = RecordingRelay()
+    server.start()
+    yield server
+    server.stop()

@@ -18,74 +18,15 @@ import pytest
 
 from monitor.config import Settings
 from monitor.pipeline import acknowledge, evaluate_range, ingest_file, init_store, mute
-from monitor.synthetic import Episode, InstrumentSpec, Scenario, generate
+from monitor.synthetic import generate
 from storage import Store
 from storage import alerts as alerts_store
-
-START, END = dt.date(2022, 1, 3), dt.date(2023, 12, 29)
-BREAK_START, BREAK_END = dt.date(2023, 3, 1), dt.date(2023, 5, 31)
-
-RULES = """
-[[rules]]
-name = "hedge-break"
-kind = "level"
-measure = "rolling:21"
-pairs = ["KLV/DUNQ"]
-below = 0.3
-clear = 0.45
-hold = 3
-severity = "critical"
-remind_every = 5
-
-[[rules]]
-name = "hedge-jump"
-kind = "jump"
-measure = "rolling:21"
-pairs = ["KLV/DUNQ"]
-delta = 0.4
-days = 10
-"""
-
-INSTRUMENTS = """
-[desk]
-name = "Halden Test Desk"
-timezone = "Europe/Berlin"
-
-[[instruments]]
-symbol = "KLV"
-name = "Kelvara Industrial"
-group = "equities"
-
-[[instruments]]
-symbol = "DUNQ"
-name = "Dunquist Machines"
-group = "equities"
-
-[[instruments]]
-symbol = "TEZ10"
-name = "Tezran 10-year bond future"
-group = "rates"
-"""
-
-
-def _scenario() -> Scenario:
-    return Scenario(
-        instruments=(
-            InstrumentSpec("KLV", "Kelvara Industrial", "equities", loadings={"market": 0.9}),
-            InstrumentSpec("DUNQ", "Dunquist Machines", "equities", loadings={"market": 0.9}),
-            InstrumentSpec("TEZ10", "Tezran 10-year bond future", "rates",
-                           loadings={"market": -0.3}, vol=0.004),
-        ),
-        factors=("market",),
-        start=START, end=END, seed=5, missing_rate=0.0, garch=None,
-        episodes=(Episode("decouple", BREAK_START, BREAK_END, symbols=("KLV", "DUNQ"),
-                          description="the hedge stops working for three months"),),
-    )
+from tests.scenarios import BREAK_END, BREAK_START, END, INSTRUMENTS, RULES, break_scenario
 
 
 @pytest.fixture(scope="module")
 def closes_csv(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    closes = generate(_scenario()).closes
+    closes = generate(break_scenario()).closes
     closes.index.name = "date"
     path = tmp_path_factory.mktemp("closes") / "closes.csv"
     closes.to_csv(path, date_format="%Y-%m-%d")
@@ -258,7 +199,8 @@ def test_killed_backfill_rerun_equals_one_clean_run(
 
     (tmp_path / "clean").mkdir()
     clean_toml = tmp_path / "clean" / "comove.toml"
-    clean_toml.write_text((tmp_path / "comove.toml").read_text().replace("killed.sqlite", "clean.sqlite"))
+    text = (tmp_path / "comove.toml").read_text()
+    clean_toml.write_text(text.replace("killed.sqlite", "clean.sqlite"))
     clean_proc = _cli(clean_toml, "init")
     clean_proc.communicate(timeout=60)
     for args in (("ingest", str(closes_csv)), ("backfill",)):
