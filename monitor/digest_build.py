@@ -1,0 +1,297 @@
+"""Building the digest's context from plain data: alerts, events, returns, rules.
+
+Pure apart from the engine calls: the pipeline reads the store and hands over rows and
+frames; this module picks what the evening's digest shows and computes the numbers
+beside each alert (value, band, drivers, history), the largest changes, the group
+averages and the group matrices. Rendering is `monitor.digest`'s job.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from monitor import __version__
+from monitor.digest import (
+    AlertHistory,
+    AlertView,
+    BasketView,
+    DataIssueView,
+    DigestContext,
+    DigestParameters,
+    DriverView,
+    HeatmapView,
+    Instrument,
+    MoverView,
+)
+from monitor.engine import parse_measure, stream
+from monitor.engine.basket import basket_gauge
+from monitor.engine.drivers import drivers
+from monitor.engine.strength import describe
+from monitor.rules import Rule
+from monitor.rules.targets import GroupTargets
+
+MOVERS_SHOWN = 10
+DRIVER_WINDOW = 63
+"""Window for the drivers of an alert on a measure that has no window (EWMA)."""
+
+
+@dataclass(frozen=True)
+class AlertFacts:
+    """One stored alert, as the pipeline read it (see storage.alerts.AlertRow)."""
+
+    id: int
+    rule: str
+    target: str
+    opened_on: dt.date
+    first_breach_on: dt.date
+    state: str
+    cleared_on: dt.date | None
+    severity: str
+    rule_kind: str
+    announced: bool
+    acknowledged_by: str | None = None
+    acknowledged_at: dt.datetime | None = None
+    acknowledged_note: str | None = None
+    reminded_today: bool = False
+    event_today: Mapping[str, Any] | None = None
+    """The event of the digest's day (opened / continuing / cleared), if any."""
+
+
+@dataclass(frozen=True)
+class DigestInputs:
+    """Everything the digest needs, read from the store by the pipeline."""
+
+    desk: str
+    as_of: dt.date
+    generated_at: dt.datetime
+    returns: pd.DataFrame
+    """Returns through the digest's day, dates x symbols (the universe's order)."""
+    names: Mapping[str, str]
+    groups: Mapping[str, Sequence[str]]
+    rules: Mapping[str, Rule]
+    alerts: Sequence[AlertFacts]
+    monitored_pairs: np.ndarray
+    """(P, 2) column indices of the pairs the rules watch (the movers' candidates)."""
+    measures: Sequence[str]
+    return_kind: str
+    horizon: int
+    level: float
+    movers_days: int
+    gauge_days: int
+    history_days: int
+    data_issues: Sequence[DataIssueView] = ()
+    attention: str = ""
+    data_through: dt.date | None = None
+    extra_issues: Sequence[DataIssueView] = field(default_factory=tuple)
+
+
+def _instrument(symbol: str, names: Mapping[str, str]) -> Instrument:
+    return Instrument(symbol=symbol, name=names.get(symbol, ""))
+
+
+def _finite_or_none(value: float) -> float | None:
+    return None if value is None or not math.isfinite(value) else float(value)
+
+
+def _pair_series(returns: np.ndarray, a: int, b: int, measure: str, start: int, stop: int,
+                 level: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    days = list(stream(returns[:, [a, b]], measure, pairs=np.array([[0, 1]]), start=start,
+                       stop=stop, level=level))
+    value = np.array([d.value[0] for d in days])
+    low = np.array([d.low[0] for d in days])
+    high = np.array([d.high[0] for d in days])
+    n = np.array([d.n[0] for d in days])
+    return value, low, high, n
+
+
+def _rule_levels(rule: Rule) -> tuple[float | None, float | None, str]:
+    threshold = getattr(rule, "threshold", None)
+    if threshold is not None:
+        return float(threshold.level), float(threshold.clear_level), str(threshold.side)
+    if rule.kind == "shift":
+        return float(getattr(rule, "z_level", math.nan)), float(getattr(rule, "clear_z", 0)), ""
+    if rule.kind == "jump":
+        return float(getattr(rule, "delta", math.nan)), None, ""
+    return None, None, ""
+
+
+def _driver_window(measure: str) -> int:
+    spec = parse_measure(measure)
+    return int(spec.window) if spec.window else DRIVER_WINDOW
+
+
+def build_context(inputs: DigestInputs) -> DigestContext:
+    """The digest for `inputs.as_of` (its day is the last business day on or before it)."""
+    returns = inputs.returns
+    matrix = returns.to_numpy(dtype=np.float64)
+    symbols = [str(c) for c in returns.columns]
+    column = {s: k for k, s in enumerate(symbols)}
+    dates = [d.date() for d in returns.index]
+    t = len(dates) - 1
+    day = dates[t] if dates else inputs.as_of
+    views: dict[str, list[AlertView]] = {"new": [], "continuing": [], "acknowledged": [],
+                                         "cleared": []}
+    first_history = max(0, t - inputs.history_days + 1)
+    for facts in inputs.alerts:
+        if not facts.announced:
+            continue
+        if facts.opened_on == day and facts.state != "withdrawn":
+            bucket = "new"
+        elif facts.state == "cleared" and facts.cleared_on == day:
+            bucket = "cleared"
+        elif facts.state == "open" and facts.acknowledged_by:
+            bucket = "acknowledged"
+        elif facts.state == "open":
+            bucket = "continuing"
+        else:
+            continue
+        rule = inputs.rules.get(facts.rule)
+        views[bucket].append(_alert_view(facts, bucket, rule, inputs, matrix, column, dates, t,
+                                         first_history, day))
+    movers = _movers(inputs, matrix, symbols, t)
+    baskets, heatmaps = _groups(inputs, matrix, column, dates, t)
+    counts = [_typical_count(m) for m in inputs.measures]
+    params = DigestParameters(
+        measures=tuple(inputs.measures), observations=tuple(counts),
+        return_kind=inputs.return_kind,  # type: ignore[arg-type]
+        horizon_days=inputs.horizon, confidence_level=inputs.level,
+        mover_days=inputs.movers_days, basket_days=inputs.gauge_days,
+    )
+    return DigestContext(
+        desk=inputs.desk, as_of=day, data_through=inputs.data_through or day,
+        generated_at=inputs.generated_at, parameters=params, version=__version__,
+        data_attention=bool(inputs.attention), attention_message=inputs.attention,
+        new_alerts=tuple(views["new"]), continuing=tuple(views["continuing"]),
+        acknowledged=tuple(views["acknowledged"]), cleared=tuple(views["cleared"]),
+        movers=tuple(movers), baskets=tuple(baskets),
+        data_quality=tuple(inputs.data_issues), heatmaps=tuple(heatmaps),
+    )
+
+
+def _typical_count(measure: str) -> float:
+    spec = parse_measure(measure)
+    if spec.window:
+        return float(spec.window)
+    lam = float(spec.lam or 0.0)
+    return (1 + lam) / (1 - lam)  # Kish's limit for EWMA weights (REFERENCES.md)
+
+
+def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: DigestInputs,
+                matrix: np.ndarray, column: Mapping[str, int], dates: list[dt.date], t: int,
+                first_history: int, day: dt.date) -> AlertView:
+    event = facts.event_today or {}
+    level, clear_level, direction = (None, None, "") if rule is None else _rule_levels(rule)
+    measure = ",".join(rule.measures()) if rule is not None and rule.measures() else ""
+    a_text, _, b_text = facts.target.partition("/")
+    a = _instrument(a_text, inputs.names)
+    b = _instrument(b_text, inputs.names) if b_text else Instrument(symbol="", name="")
+    if not b_text and isinstance(getattr(rule, "targets", None), GroupTargets):
+        a = Instrument(symbol=a_text, name="group average")
+    value = low = high = n = math.nan
+    history = None
+    driver_views: list[DriverView] = []
+    primary = rule.measures()[0] if rule is not None and rule.measures() else ""
+    if b_text and a_text in column and b_text in column and primary and t >= 0:
+        ia, ib = column[a_text], column[b_text]
+        values, lows, highs, ns = _pair_series(matrix, ia, ib, primary, first_history, t + 1,
+                                               inputs.level)
+        value, low, high, n = values[-1], lows[-1], highs[-1], ns[-1]
+        history = AlertHistory(dates=dates[first_history:t + 1], values=values,
+                               band_low=lows, band_high=highs)
+        if bucket == "new":
+            window = _driver_window(primary)
+            rows, contributions = drivers(matrix, ia, ib, t, window).ranked()
+            driver_views = [
+                DriverView(day=dates[int(r)], contribution=float(c),
+                           return_a=float(matrix[int(r), ia]), return_b=float(matrix[int(r), ib]))
+                for r, c in zip(rows, contributions, strict=True)
+            ]
+    elif event:
+        value = float(event.get("value") or math.nan)
+        low = float(event.get("low") or math.nan)
+        high = float(event.get("high") or math.nan)
+        n = float(event.get("n") or math.nan)
+    held_from = facts.first_breach_on
+    days_held = sum(1 for d in dates if held_from <= d <= day) if dates else 0
+    z = event.get("z") if event else None
+    p = event.get("p") if event else None
+    baseline = event.get("reference") if event else None
+    shown_state = {"new": "new", "continuing": "continuing", "acknowledged": "acknowledged",
+                   "cleared": "cleared"}[bucket]
+    return AlertView(
+        id=facts.id, severity=facts.severity,  # type: ignore[arg-type]
+        rule_name=facts.rule, rule_kind=facts.rule_kind, a=a, b=b, measure=measure,
+        value=float(value), band_low=float(low), band_high=float(high), days_held=days_held,
+        opened=facts.opened_on, state=shown_state, level=level, clear_level=clear_level,
+        direction=direction,
+        strength=describe(value) if math.isfinite(value) and b_text else "",
+        p_value=_finite_or_none(p) if p is not None else None,
+        z=_finite_or_none(z) if z is not None else None,
+        baseline=_finite_or_none(baseline) if baseline is not None else None,
+        acknowledged_by=facts.acknowledged_by, acknowledged_at=facts.acknowledged_at,
+        acknowledgement_note=facts.acknowledged_note, cleared_on=facts.cleared_on,
+        drivers=tuple(driver_views), history=history if bucket == "new" else None,
+        observations=_finite_or_none(n),
+    )
+
+
+def _movers(inputs: DigestInputs, matrix: np.ndarray, symbols: list[str], t: int
+            ) -> list[MoverView]:
+    pairs = np.asarray(inputs.monitored_pairs, dtype=np.int64).reshape(-1, 2)
+    before_t = t - inputs.movers_days
+    if pairs.size == 0 or before_t < 0:
+        return []
+    measure = inputs.measures[0]
+    days = list(stream(matrix, measure, pairs=pairs, start=before_t, stop=t + 1,
+                       level=inputs.level))
+    now, before = days[-1].value, days[0].value
+    with np.errstate(invalid="ignore"):
+        change = np.abs(now - before)
+    ranked = np.argsort(np.where(np.isnan(change), -1.0, change))[::-1][:MOVERS_SHOWN]
+    return [
+        MoverView(a=_instrument(symbols[pairs[k, 0]], inputs.names),
+                  b=_instrument(symbols[pairs[k, 1]], inputs.names), measure=measure,
+                  value_now=float(now[k]), value_before=float(before[k]))
+        for k in ranked.tolist() if not math.isnan(change[k])
+    ]
+
+
+def _groups(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
+            dates: list[dt.date], t: int) -> tuple[list[BasketView], list[HeatmapView]]:
+    baskets: list[BasketView] = []
+    heatmaps: list[HeatmapView] = []
+    if t < 0:
+        return baskets, heatmaps
+    measure = inputs.measures[0]
+    first = max(0, t - inputs.history_days + 1)
+    for group, members in inputs.groups.items():
+        cols = [column[s] for s in members if s in column]
+        if len(cols) < 2:
+            continue
+        block = matrix[:, cols]
+        days = list(stream(block, measure, start=first, stop=t + 1, level=inputs.level))
+        averages = []
+        used = 0
+        positions = np.arange(len(cols))
+        for d in days:
+            gauge = basket_gauge(d.value, positions, d.t)
+            averages.append(gauge.value)
+            used = gauge.pairs_used
+        history = np.array(averages, dtype=np.float64)
+        before_index = len(days) - 1 - inputs.gauge_days
+        baskets.append(BasketView(
+            group=group, average_now=float(history[-1]),
+            average_before=float(history[before_index]) if before_index >= 0 else math.nan,
+            pairs_used=int(used), instruments=len(cols),
+            history_dates=dates[first:t + 1], history_values=history,
+        ))
+        heatmaps.append(HeatmapView(group=group, symbols=[s for s in members if s in column],
+                                    matrix=np.array(days[-1].value)))
+    return baskets, heatmaps
