@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from monitor.engine import one_day, stream
+from monitor.engine import stream
 from tests.engine_reference import desk_returns, finite_max_difference, reference_rolling
 
 

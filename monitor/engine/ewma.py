@@ -161,8 +161,14 @@ def _closed_form(
     return Moments(*(np.ascontiguousarray(f[0]) for f in vars(m).values()))
 
 
-def _step(state: _State, x_left: FloatArray, x_right: FloatArray, mm: FloatArray, lam: float,
-          centred: bool) -> None:
+def _step(
+    state: _State,
+    x_left: FloatArray,
+    x_right: FloatArray,
+    mm: FloatArray,
+    lam: float,
+    centred: bool,
+) -> None:
     """Age the weights by one row and add the row's returns (``mm`` = 1 where both present)."""
     m = state.moments
     m.weight = lam * m.weight + mm
@@ -244,8 +250,10 @@ def ewma_tile(
         else:
             moments = _empty_moments(sub, uniform=uniform)
         states.append(_State(sub, moments, uniform, block_common))
-    days = (_days(state, shifted, valid, lam, centred, measure.min_count, start, stop)
-            for state in states)
+    days = (
+        _days(state, shifted, valid, lam, centred, measure.min_count, start, stop)
+        for state in states
+    )
     base, *rest = days
     if not overrides:
         yield from base

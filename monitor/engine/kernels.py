@@ -25,7 +25,8 @@ exactly zero mean square is stale. Values are clipped to [-1, 1]; never inf.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
+from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -58,44 +59,35 @@ class Sums:
     right_sq: FloatArray
     cross: FloatArray
 
+    def _map(self, fn: Callable[[FloatArray], FloatArray]) -> Sums:
+        return Sums(
+            weight=fn(self.weight),
+            weight2=None if self.weight2 is None else fn(self.weight2),
+            left=fn(self.left),
+            right=fn(self.right),
+            left_sq=fn(self.left_sq),
+            right_sq=fn(self.right_sq),
+            cross=fn(self.cross),
+        )
+
     def day(self, c: int) -> Sums:
         """Day ``c`` of sums with a leading day axis (views)."""
-        return Sums(**{item.name: None if getattr(self, item.name) is None  # type: ignore[arg-type]
-                       else getattr(self, item.name)[c] for item in fields(self)})
+        return self._map(lambda array: array[c])
 
     def copy(self) -> Sums:
         """Independent, writable copies of every field."""
-        return Sums(**{item.name: None if getattr(self, item.name) is None  # type: ignore[arg-type]
-                       else np.array(getattr(self, item.name)) for item in fields(self)})
+        return self._map(np.array)
 
     def add(self, other: Sums) -> None:
-        """Add ``other`` field by field, in place."""
-        for item in fields(self):
-            mine, theirs = getattr(self, item.name), getattr(other, item.name)
-            if mine is not None and theirs is not None:
-                mine += theirs
-
-    def accumulate(self) -> None:
-        """Running totals along the leading day axis, in place (day c += day c-1).
-
-        A loop of whole-array adds: ``np.cumsum`` along the first axis of a 3-D array walks
-        memory with a large stride and is several times slower.
-        """
-        for item in fields(self):
-            array = getattr(self, item.name)
-            if array is None or array.shape[0] < 2:
-                continue
-            for c in range(1, array.shape[0]):
-                np.add(array[c], array[c - 1], out=array[c])
-
-    @staticmethod
-    def stacked(first: Sums, rest: Sums) -> Sums:
-        """Day-axis concatenation of two sums of the same layout (``first`` first)."""
-        joined: dict[str, FloatArray | None] = {}
-        for item in fields(first):
-            a, b = getattr(first, item.name), getattr(rest, item.name)
-            joined[item.name] = None if a is None or b is None else np.concatenate([a, b])
-        return Sums(**joined)  # type: ignore[arg-type]
+        """Add ``other`` field by field, in place (``weight2`` only when both have it)."""
+        self.weight += other.weight
+        if self.weight2 is not None and other.weight2 is not None:
+            self.weight2 += other.weight2
+        self.left += other.left
+        self.right += other.right
+        self.left_sq += other.left_sq
+        self.right_sq += other.right_sq
+        self.cross += other.cross
 
 
 @dataclass
@@ -343,9 +335,7 @@ def constant(
 ) -> npt.NDArray[Any]:
     """A read-only array of ``shape`` holding one value (zero strides, nothing allocated)."""
     cell: npt.NDArray[Any] = np.array([value], dtype=dtype)
-    out: npt.NDArray[Any] = np.ndarray(
-        shape, dtype=dtype, buffer=cell, strides=(0,) * len(shape)
-    )
+    out: npt.NDArray[Any] = np.ndarray(shape, dtype=dtype, buffer=cell, strides=(0,) * len(shape))
     out.flags.writeable = False
     return out
 

@@ -133,9 +133,7 @@ class TileLayout:
         if rows_bad.size:
             overrides.append((TileLayout(self.rows[rows_bad], self.cols), (rows_bad,)))
         if cols_bad.size:
-            overrides.append(
-                (TileLayout(self.rows, self.cols[cols_bad]), (slice(None), cols_bad))
-            )
+            overrides.append((TileLayout(self.rows, self.cols[cols_bad]), (slice(None), cols_bad)))
         return True, overrides
 
     def pairs(self) -> tuple[IntArray, IntArray]:

@@ -102,9 +102,7 @@ def _result(z: FloatArray, recent: DayResult, reference: DayResult | None) -> Sh
     if reference is None:
         empty = np.full(recent.value.shape, np.nan)
         return ShiftResult(z, two_sided_p(z), recent.value, recent.n, empty, np.zeros_like(empty))
-    return ShiftResult(
-        z, two_sided_p(z), recent.value, recent.n, reference.value, reference.n
-    )
+    return ShiftResult(z, two_sided_p(z), recent.value, recent.n, reference.value, reference.n)
 
 
 def nested_shift(
