@@ -664,6 +664,14 @@ class BuildReport:
 # --- names ---------------------------------------------------------------------------
 
 
+# Latin letters that Unicode does not decompose into a base letter and an accent, so NFKD
+# alone would drop them from the readable part ("Ærø" would become "r").
+_LETTERS_WITHOUT_DECOMPOSITION = str.maketrans({
+    "Æ": "AE", "æ": "ae", "Ø": "O", "ø": "o", "Œ": "OE", "œ": "oe", "ß": "ss", "Đ": "D",
+    "đ": "d", "Ł": "L", "ł": "l", "Þ": "Th", "þ": "th", "Ð": "D", "ð": "d", "ı": "i",
+})
+
+
 def safe_name(text: str) -> str:
     """Turn any text (a symbol, a rule name) into a file name that is safe everywhere.
 
@@ -677,14 +685,15 @@ def safe_name(text: str) -> str:
     -------
     str
         ``<slug>-<hash>``: the slug is at most `SLUG_LENGTH` lower-case ASCII letters,
-        digits and "-" (accents dropped, other runs of characters become one "-"; "x" when
-        nothing is left), starting with a letter or digit; the hash is the first
+        digits and "-" (accents dropped, "Æ" spelled "ae", other runs of characters become
+        one "-"; "x" when nothing is left), starting with a letter or digit; the hash is the first
         `HASH_LENGTH` hex digits of SHA-256 of the exact text. So the name never holds a
         separator, a dot or a capital, two texts differing only in case or punctuation
         still get different names (also on case-insensitive file systems), and the same
         text gives the same name on every machine and run.
     """
-    folded = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode("ascii")
+    spelled = text.translate(_LETTERS_WITHOUT_DECOMPOSITION)
+    folded = unicodedata.normalize("NFKD", spelled).encode("ascii", "ignore").decode("ascii")
     slug = re.sub(r"[^a-z0-9]+", "-", folded.lower()).strip("-")[:SLUG_LENGTH].strip("-")
     digest = hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()[:HASH_LENGTH]
     return f"{slug or 'x'}-{digest}"
@@ -857,6 +866,7 @@ class _HistoryPage:
     acknowledgements: tuple[AckView, ...]
     drivers: tuple[DriversView, ...]
     symbols: tuple[str, str] | None
+    alert_ids: frozenset[str]
 
 
 def _id_key(alert_id: int | str) -> tuple[int, int, str]:
@@ -1130,7 +1140,7 @@ class _SiteRenderer:
             acknowledgements=tuple(sorted(acknowledgements,
                                           key=lambda a: (a.at, _id_key(a.alert_id)))),
             drivers=tuple(sorted(drivers, key=lambda d: (d.day, _id_key(d.alert_id)))),
-            symbols=symbols,
+            symbols=symbols, alert_ids=frozenset(str(row.alert.id) for row in rows),
         )
         self._add(path, owner, self.render("history.html", "../", "alerts", page=view))
 

@@ -121,8 +121,16 @@ class ChartSpan:
     end: date | None
 
 
+_EPOCH_ORDINAL = date(1970, 1, 1).toordinal()
+
+
 def _as_days(dates: Sequence[date] | npt.NDArray[np.datetime64]) -> npt.NDArray[np.datetime64]:
-    return np.asarray(dates, dtype="datetime64[D]").reshape(-1)
+    if isinstance(dates, np.ndarray):
+        return dates.astype("datetime64[D]").reshape(-1)
+    # numpy converts date objects one by one through a slow path; ordinals are ten times
+    # faster, and a site converts a few hundred thousand dates.
+    ordinals = np.fromiter((d.toordinal() for d in dates), dtype=np.int64, count=len(dates))
+    return (ordinals - _EPOCH_ORDINAL).astype("datetime64[D]")
 
 
 def _as_float(values: Sequence[float] | Float1D) -> Float1D:
