@@ -955,10 +955,9 @@ class _SiteRenderer:
         for target in ctx.targets:
             if target.name:
                 self.names.setdefault(target.label, target.name)
-        self.rules = {rule.name: rule for rule in ctx.rules}
         self.rows = [self._alert_row(a) for a in sorted(ctx.alerts, key=_alert_order)]
         self.group_names = sorted(
-            set(ctx.groups.values()) | {g for row in self.rows for g in row.groups} - {""}
+            (set(ctx.groups.values()) | {g for row in self.rows for g in row.groups}) - {""}
         )
 
     # Each path may come from one thing only; a clash would mean two pages share a file.

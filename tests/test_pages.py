@@ -317,6 +317,13 @@ def test_filter_form_is_hidden_until_the_script_runs_and_offers_every_rule_and_g
     assert set(groups) == set(GROUPS.values())
 
 
+def test_instruments_without_a_group_add_no_empty_group_choice() -> None:
+    ctx = replace(made_up_context(), groups=GROUPS | {"LONE": ""})
+    index = BeautifulSoup(render_site(ctx)["index.html"].decode("utf-8"), "html.parser")
+    values = [_attr(o, "value") for o in index.select("#filter-group option")]
+    assert values.count("") == 1 and values[0] == ""  # only "any"
+
+
 # --- links, escaping, cautions -------------------------------------------------------
 
 
@@ -883,7 +890,19 @@ def test_methods_other_than_get_and_head_get_405(
     assert (site / "index.html").read_bytes() == before
 
 
-def test_server_refuses_a_non_loopback_address_unless_allowed(tmp_path: Path) -> None:
+def test_quiet_server_logs_refusals_to_stderr_and_not_successes(
+    served: tuple[str, int, Path], capsys: pytest.CaptureFixture[str]
+) -> None:
+    host, port, _site = served
+    capsys.readouterr()
+    assert _request(host, port, "GET", "/index.html")[0] == 200
+    assert capsys.readouterr().err == ""
+    assert _request(host, port, "GET", "/../secret.txt")[0] == 403
+    logged = capsys.readouterr().err.splitlines()
+    assert len(logged) == 1 and "403" in logged[0] and SECRET not in logged[0]
+
+
+def test_server_refuses_a_non_loopback_address_and_accepts_localhost(tmp_path: Path) -> None:
     with pytest.raises(ComoveError, match="host: '0.0.0.0' is not a loopback"):
         make_server(tmp_path, host="0.0.0.0")
     server = make_server(tmp_path, host="localhost")
