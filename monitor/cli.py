@@ -217,14 +217,14 @@ class ProgressLine:
 @command("backfill", "Evaluate the rules over a past range of business days and store the "
          "alerts (idempotent; an interrupted run resumes).", _backfill_args)
 def _backfill(args: argparse.Namespace) -> int:
-    from monitor.pipeline import evaluate_range, open_settings_store
+    from monitor.pipeline import backfill, open_settings_store
 
     settings = load(args)
     store = open_settings_store(settings)
     # COMOVE_COMMIT_DAYS commits more often (the tests kill a backfill between commits).
     commit_days = int(os.environ.get("COMOVE_COMMIT_DAYS", "60"))
-    report = evaluate_range(store, settings, args.start, args.end, rule_names=args.rule,
-                            progress=ProgressLine(), force=args.force, commit_days=commit_days)
+    report = backfill(store, settings, args.start, args.end, rule_names=args.rule,
+                      progress=ProgressLine(), force=args.force, commit_days=commit_days)
     if report.already_done:
         print(f"already evaluated through {report.resumed_from} with these rules and closes; "
               "nothing changed (--force replays it)")
@@ -396,6 +396,74 @@ def _run(args: argparse.Namespace) -> int:
     store = open_settings_store(settings)
     return run_daily_command(store, settings, once=args.once, as_of=args.as_of,
                              force=args.force, catch_up=not args.no_catch_up)
+
+
+# --- pages -----------------------------------------------------------------------------
+
+
+def _pages_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("action", choices=("build", "serve"),
+                        help="build: write the site; serve: serve it read-only on loopback")
+    parser.add_argument("--out", type=Path, metavar="DIR",
+                        help="site folder (default: pages/ beside the settings file)")
+    parser.add_argument("--host", default="127.0.0.1", help="serve: address (loopback)")
+    parser.add_argument("--port", type=int, default=8710, help="serve: port (default 8710)")
+    parser.add_argument("--allow-remote", action="store_true",
+                        help="serve: allow a non-loopback --host (other machines can read "
+                             "the pages)")
+
+
+@command("pages", "Build the alert history pages, or serve them read-only in a browser.",
+         _pages_args)
+def _pages(args: argparse.Namespace) -> int:
+    from monitor.pipeline import build_pages, open_settings_store, pages_folder
+
+    settings = load(args)
+    folder = args.out or pages_folder(settings)
+    if args.action == "build":
+        report = build_pages(open_settings_store(settings), settings, folder)
+        print(f"pages in {folder}: {report.written} written, {report.unchanged} unchanged, "
+              f"{report.removed} removed; open {folder / 'index.html'}")
+        return 0
+    from monitor.serve import make_server, server_url
+
+    if not (folder / "index.html").is_file():
+        raise ComoveError(f"no site in {folder}: run `comove pages build` first")
+    server = make_server(folder, args.host, args.port, allow_remote=args.allow_remote)
+    print(f"serving {folder} at {server_url(server)} (read-only; Ctrl-C stops)", flush=True)
+    try:
+        server.serve_forever()
+    finally:
+        server.server_close()
+    return 0
+
+
+# --- demo ------------------------------------------------------------------------------
+
+
+def _demo_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--out", type=Path, default=Path("comove-demo"), metavar="DIR",
+                        help="folder of the demo desk (default: ./comove-demo)")
+
+
+@command("demo", "Build a fictional desk with four years of synthetic closes and run the "
+         "whole pipeline on it.", _demo_args, needs_config=False)
+def _demo(args: argparse.Namespace) -> int:
+    from monitor.demo import run_demo
+
+    report = run_demo(args.out)
+    folder = report.folder
+    print(f"\ndone in {report.seconds:.0f} s. Open:")
+    print(f"  digest   {report.digest.paths.html}")
+    print(f"  pages    {report.pages_index}")
+    print(f"  store    {report.store_url}")
+    print("Next, try:")
+    config = folder / "comove.toml"
+    print(f"  comove alerts --config {config}")
+    print(f"  comove series KLV DUNQ --measure rolling:63 --start 2026-09-01 --config {config}")
+    print(f"  comove pages serve --config {config}")
+    print("comove is a monitoring aid; these numbers are invented and nothing here is advice.")
+    return 0
 
 
 # --- bench ------------------------------------------------------------------------------

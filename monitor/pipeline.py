@@ -831,6 +831,11 @@ def evaluation_lease(store: Store, *, wait_seconds: float = 0.0, owner: str | No
     while True:
         with store.begin(immediate=True) as conn:
             holder = runs_store.take_lease(conn, LEASE_NAME, me, now=now(), ttl=LEASE_TTL)
+            if holder is not None and _owner_is_dead(holder.owner):
+                # A process on this machine that no longer exists cannot finish its work;
+                # waiting for its lease to expire would only delay the day.
+                runs_store.release_lease(conn, LEASE_NAME, holder.owner)
+                holder = runs_store.take_lease(conn, LEASE_NAME, me, now=now(), ttl=LEASE_TTL)
         if holder is None:
             break
         if time.monotonic() >= deadline:
@@ -843,6 +848,32 @@ def evaluation_lease(store: Store, *, wait_seconds: float = 0.0, owner: str | No
     finally:
         with store.begin(immediate=True) as conn:
             runs_store.release_lease(conn, LEASE_NAME, me)
+
+
+def backfill(store: Store, settings: Settings, start: dt.date | None, end: dt.date | None,
+             **options: Any) -> EvaluationReport:
+    """`evaluate_range` under the evaluation lease, so it never overlaps a daily run."""
+    with evaluation_lease(store):
+        with store.begin() as conn:
+            runs_store.close_unfinished(conn, now=dt.datetime.now(dt.UTC))
+        return evaluate_range(store, settings, start, end, **options)
+
+
+def _owner_is_dead(owner: str) -> bool:
+    import os
+    import socket
+
+    host, _, rest = owner.partition(":")
+    pid_text = rest.partition(":")[0]
+    if host != socket.gethostname() or not pid_text.isdigit():
+        return False
+    try:
+        os.kill(int(pid_text), 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:
+        return False
+    return False
 
 
 def renew(store: Store, owner: str) -> None:
@@ -962,6 +993,9 @@ def run_daily(
                                    f"{done[-1].id}); --force reruns it")
     with evaluation_lease(store, wait_seconds=wait_seconds) as owner:
         with store.begin() as conn:
+            # Holding the lease, any run still marked running was cut short (its process
+            # died): say so in the ledger instead of leaving it running forever.
+            runs_store.close_unfinished(conn, now=dt.datetime.now(dt.UTC))
             run_id = runs_store.start_run(conn, kind="daily", as_of=as_of, range_start=None,
                                           params_hash="", now=moment)
         report = DailyReport(as_of=as_of, status="running", run_id=run_id)
@@ -1019,8 +1053,59 @@ def last_completed_daily(store: Store) -> dt.date | None:
 
 def build_pages(store: Store, settings: Settings, out_dir: Path,
                 now: dt.datetime | None = None) -> Any:
-    """Rebuild the history pages (see monitor.pages)."""
-    raise ComoveError("history pages are not available yet")
+    """Rebuild the history site in `out_dir` from the store, with the digest archive."""
+    import shutil
+
+    from monitor.pages import DigestLink, build_site
+    from monitor.pages_build import SiteInputs, build_site_context
+
+    now = now or dt.datetime.now(dt.UTC)
+    symbols = universe(store, settings)
+    plan = build_plan(settings, symbols)
+    returns = read_returns(store, settings, symbols)
+    with store.connect() as conn:
+        alerts = alerts_store.list_alerts(conn)
+        events = alerts_store.events_for(conn)
+        acks = alerts_store.list_acknowledgements(conn)
+        runs = runs_store.list_runs(conn)
+        waiting = {row.as_of: row for row in outbox_store.unsent(conn)}
+    # The digest archive: each rendered digest folder is copied beside the pages.
+    archive = out_dir / "digests"
+    links = []
+    source = settings.resolve_path(settings.digest.folder)
+    if source.is_dir():
+        for folder in sorted(p for p in source.iterdir() if (p / "digest.html").is_file()):
+            target = archive / folder.name
+            if target.exists():
+                shutil.rmtree(target)
+            shutil.copytree(folder, target)
+            try:
+                day = dt.date.fromisoformat(folder.name)
+            except ValueError:
+                continue
+            subject = _digest_subject(folder)
+            status = "not sent yet" if day in waiting else ""
+            links.append(DigestLink(as_of=day, path=f"digests/{folder.name}/digest.html",
+                                    subject=subject, status=status))
+    inputs = SiteInputs(
+        desk=settings.desk.name, generated_at=now, returns=returns,
+        names={i.symbol: i.name for i in settings.instruments}, groups=settings.groups,
+        rules=plan.rules, rule_tables=settings.rule_tables,
+        alerts=alerts, events=events, acknowledgements=acks, runs=runs, digests=links,
+        measures=settings.correlation.measures, return_kind=settings.returns.kind,
+        level=settings.correlation.level,
+    )
+    return build_site(build_site_context(inputs), out_dir)
+
+
+def _digest_subject(folder: Path) -> str:
+    from email import message_from_bytes
+    from email.policy import default
+
+    eml = folder / "digest.eml"
+    if not eml.is_file():
+        return ""
+    return str(message_from_bytes(eml.read_bytes(), policy=default).get("Subject", ""))
 
 
 def latest_close_date(store: Store) -> dt.date:

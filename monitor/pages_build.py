@@ -1,0 +1,279 @@
+"""Building the history site's context from plain data: alerts, events, acks, returns.
+
+Pure apart from the engine calls: the pipeline reads the store and hands over rows and the
+returns frame; this module decides which pages exist (one per pair with an alert or
+declared in a rule by name, one per group or instrument target with an alert, one per
+rule) and computes each page's measure histories and alert drivers. Rendering is
+`monitor.pages`'s job.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from monitor import __version__
+from monitor.engine import parse_measure, stream
+from monitor.engine.basket import basket_gauge
+from monitor.engine.drivers import drivers
+from monitor.pages import (
+    AckView,
+    AlertSpan,
+    AlertSummary,
+    DigestLink,
+    DriverRow,
+    DriversView,
+    EventView,
+    InstrumentView,
+    MeasureHistory,
+    PairPage,
+    RulePage,
+    RunView,
+    SiteContext,
+    SiteParameters,
+    TargetKind,
+    TargetPage,
+)
+from monitor.rules import Rule
+from monitor.rules.targets import PairTargets
+
+DRIVER_WINDOW = 63
+DRIVERS_KEPT = 10
+
+
+@dataclass(frozen=True)
+class SiteInputs:
+    """Everything the site needs, read from the store by the pipeline."""
+
+    desk: str
+    generated_at: dt.datetime
+    returns: pd.DataFrame
+    names: Mapping[str, str]
+    groups: Mapping[str, Sequence[str]]
+    rules: Sequence[Rule]
+    rule_tables: Sequence[Mapping[str, Any]]
+    alerts: Sequence[Any]  # storage.alerts.AlertRow
+    events: Sequence[Mapping[str, Any]]
+    acknowledgements: Sequence[Mapping[str, Any]]
+    runs: Sequence[Any]  # storage.runs.RunRow
+    digests: Sequence[DigestLink]
+    measures: Sequence[str]
+    return_kind: str
+    level: float
+
+
+def _history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.date],
+             level: float, levels: Sequence[float] = ()) -> MeasureHistory:
+    days = list(stream(matrix[:, cols], measure, pairs=np.array([[0, 1]]), level=level))
+    return MeasureHistory(
+        measure=measure, dates=dates, values=np.array([d.value[0] for d in days]),
+        band_low=np.array([d.low[0] for d in days]),
+        band_high=np.array([d.high[0] for d in days]), levels=tuple(levels))
+
+
+def _group_history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.date],
+                   levels: Sequence[float]) -> MeasureHistory:
+    positions = np.arange(len(cols))
+    values = np.array([basket_gauge(d.value, positions, d.t).value
+                       for d in stream(matrix[:, cols], measure)])
+    nan = np.full(len(values), np.nan)
+    return MeasureHistory(measure=f"group average, {measure}", dates=dates, values=values,
+                          band_low=nan, band_high=nan.copy(), levels=tuple(levels))
+
+
+def _levels(rule: Rule) -> list[float]:
+    threshold = getattr(rule, "threshold", None)
+    if threshold is None:
+        return []
+    return [float(threshold.level), float(threshold.clear_level)]
+
+
+def _num(value: Any) -> float:
+    return math.nan if value is None else float(value)
+
+
+def _opt(value: Any) -> float | None:
+    return None if value is None or (isinstance(value, float) and math.isnan(value)) else float(
+        value)
+
+
+def build_site_context(inputs: SiteInputs) -> SiteContext:
+    returns = inputs.returns
+    matrix = returns.to_numpy(dtype=np.float64)
+    symbols = [str(c) for c in returns.columns]
+    column = {s: k for k, s in enumerate(symbols)}
+    dates = [d.date() for d in returns.index]
+    group_of = {s: g for g, members in inputs.groups.items() for s in members}
+    rules = {rule.name: rule for rule in inputs.rules}
+    events_by_alert: dict[int, list[Mapping[str, Any]]] = {}
+    for event in inputs.events:
+        events_by_alert.setdefault(int(event["alert_id"]), []).append(event)
+    acks_by_alert: dict[int, list[Mapping[str, Any]]] = {}
+    for ack in inputs.acknowledgements:
+        acks_by_alert.setdefault(int(ack["alert_id"]), []).append(ack)
+
+    summaries = []
+    by_target: dict[str, list[Any]] = {}
+    for alert in inputs.alerts:
+        rule = rules.get(alert.rule)
+        kind: TargetKind
+        if "/" in alert.target:
+            kind, target = "pair", tuple(alert.target.split("/", 1))
+        elif alert.rule_kind == "basket":
+            kind, target = "group", (alert.target,)
+        else:
+            kind, target = "instrument", (alert.target,)
+        groups = tuple(dict.fromkeys(
+            [group_of[s] for s in target if s in group_of] if kind != "group" else [alert.target]))
+        summaries.append(AlertSummary(
+            id=alert.id, state=alert.state, severity=alert.severity, rule_name=alert.rule,
+            rule_kind=alert.rule_kind, target_kind=kind, target=target,
+            opened=alert.opened_on, cleared=alert.cleared_on, peak=_num(alert.peak_value),
+            acknowledged_by=alert.acknowledged_by, groups=groups,
+            measure=",".join(rule.measures()) if rule is not None else "",
+        ))
+        by_target.setdefault(alert.target, []).append(alert)
+
+    pair_labels = list(dict.fromkeys(
+        [a.target for a in inputs.alerts if "/" in a.target]
+        + [label for rule in inputs.rules if isinstance(rule.targets, PairTargets)
+           and _declared_pairs(inputs.rule_tables, rule.name)
+           for label in rule.targets.labels]))
+    pairs = []
+    for label in pair_labels:
+        a, b = label.split("/", 1)
+        if a not in column or b not in column:
+            continue
+        alerts = by_target.get(label, [])
+        watched = [rules[r.rule] for r in alerts if r.rule in rules]
+        watched += [rule for rule in inputs.rules
+                    if isinstance(rule.targets, PairTargets) and label in rule.targets.labels]
+        measure_levels: dict[str, list[float]] = {m: [] for m in inputs.measures}
+        for rule in watched:
+            for text in rule.measures():
+                measure_levels.setdefault(text, [])
+                for level in _levels(rule):
+                    if level not in measure_levels[text]:
+                        measure_levels[text].append(level)
+        cols = [column[a], column[b]]
+        histories = [_history(matrix, cols, m, dates, inputs.level, levels)
+                     for m, levels in measure_levels.items()]
+        pairs.append(PairPage(
+            a=InstrumentView(a, inputs.names.get(a, ""), group_of.get(a, "")),
+            b=InstrumentView(b, inputs.names.get(b, ""), group_of.get(b, "")),
+            measures=histories, spans=_spans(alerts, rules), events=_events(alerts,
+                                                                           events_by_alert),
+            acknowledgements=_acks(alerts, acks_by_alert),
+            drivers=[_drivers(alert, matrix, cols, dates, rules) for alert in alerts],
+        ))
+
+    targets = []
+    for label, alerts in by_target.items():
+        if "/" in label:
+            continue
+        basket = alerts[0].rule_kind == "basket"
+        members = list(inputs.groups.get(label, ())) if basket else []
+        charts: list[MeasureHistory] = []
+        if basket:
+            cols = [column[s] for s in members if s in column]
+            rule = rules.get(alerts[0].rule)
+            if rule is not None and len(cols) >= 2 and rule.measures():
+                charts.append(_group_history(matrix, cols, rule.measures()[0], dates,
+                                                _levels(rule)))
+        targets.append(TargetPage(
+            kind="group" if basket else "instrument", label=label,
+            name="" if basket else inputs.names.get(label, ""), members=members,
+            measures=charts, spans=_spans(alerts, rules),
+            events=_events(alerts, events_by_alert),
+            acknowledgements=_acks(alerts, acks_by_alert)))
+
+    tables = {str(t.get("name")): t for t in inputs.rule_tables}
+    rule_pages = [
+        RulePage(name=rule.name, kind=rule.kind, severity=rule.severity,
+                 measure=",".join(rule.measures()),
+                 parameters=[(k, _text(v)) for k, v in tables.get(rule.name, {}).items()
+                             if k not in ("name", "kind", "description")],
+                 description=str(tables.get(rule.name, {}).get("description", rule.summary)))
+        for rule in inputs.rules
+    ]
+    runs = [
+        RunView(id=r.id, kind=r.kind, as_of=r.as_of, status=r.status, started=r.started_at,
+                range_start=r.range_start, finished=r.finished_at, duration_seconds=r.seconds,
+                counts={k: v for k, v in r.counts.items() if isinstance(v, int)},
+                error=r.error)
+        for r in inputs.runs if r.kind in ("daily", "backfill")
+    ]
+    return SiteContext(
+        desk=inputs.desk, generated_at=inputs.generated_at,
+        data_through=dates[-1] if dates else inputs.generated_at.date(), version=__version__,
+        parameters=SiteParameters(measures=tuple(inputs.measures),
+                                  return_kind=inputs.return_kind,  # type: ignore[arg-type]
+                                  confidence_level=inputs.level),
+        alerts=summaries, pairs=pairs, rules=rule_pages, runs=runs, digests=inputs.digests,
+        groups=dict(group_of), targets=targets,
+    )
+
+
+def _declared_pairs(tables: Sequence[Mapping[str, Any]], name: str) -> bool:
+    return any(t.get("name") == name and "pairs" in t for t in tables)
+
+
+def _text(value: Any) -> str:
+    if isinstance(value, list | tuple):
+        return ", ".join(str(v) for v in value)
+    return str(value)
+
+
+def _spans(alerts: Sequence[Any], rules: Mapping[str, Rule]) -> list[AlertSpan]:
+    out = []
+    for a in alerts:
+        if a.state == "withdrawn":
+            continue
+        rule = rules.get(a.rule)
+        measure = rule.measures()[0] if rule is not None and rule.measures() else ""
+        out.append(AlertSpan(alert_id=a.id, start=a.opened_on, end=a.cleared_on,
+                             rule_name=a.rule, severity=a.severity, measure=measure))
+    return out
+
+
+def _events(alerts: Sequence[Any], by_alert: Mapping[int, Sequence[Mapping[str, Any]]]
+            ) -> list[EventView]:
+    out = []
+    for a in alerts:
+        for e in by_alert.get(a.id, ()):
+            out.append(EventView(
+                day=e["date"], alert_id=a.id, rule_name=a.rule, kind=e["event"],
+                value=_num(e["value"]), level=_opt(e["level"]), band_low=_num(e["low"]),
+                band_high=_num(e["high"]), p_value=_opt(e["p"]), observations=_opt(e["n"])))
+    return sorted(out, key=lambda e: (e.day, str(e.alert_id)))
+
+
+def _acks(alerts: Sequence[Any], by_alert: Mapping[int, Sequence[Mapping[str, Any]]]
+          ) -> list[AckView]:
+    return [AckView(alert_id=a.id, by=k["by"], at=k["at"], note=k["note"] or "")
+            for a in alerts for k in by_alert.get(a.id, ())]
+
+
+def _drivers(alert: Any, matrix: np.ndarray, cols: list[int], dates: list[dt.date],
+             rules: Mapping[str, Rule]) -> DriversView:
+    rule = rules.get(alert.rule)
+    window = DRIVER_WINDOW
+    if rule is not None and rule.measures():
+        spec = parse_measure(rule.measures()[0])
+        window = int(spec.window) if spec.window else DRIVER_WINDOW
+    if alert.opened_on not in dates:
+        return DriversView(alert_id=alert.id, day=alert.opened_on)
+    t = dates.index(alert.opened_on)
+    found = drivers(matrix, cols[0], cols[1], t, window)
+    order = np.argsort(-np.abs(np.nan_to_num(found.contributions)))[:DRIVERS_KEPT]
+    rows = [DriverRow(day=dates[int(found.days[k])], contribution=float(found.contributions[k]),
+                      return_a=float(matrix[int(found.days[k]), cols[0]]),
+                      return_b=float(matrix[int(found.days[k]), cols[1]]))
+            for k in order.tolist()]
+    return DriversView(alert_id=alert.id, day=alert.opened_on, rows=rows)
