@@ -36,6 +36,7 @@ DEMO_START = dt.date(2022, 12, 1)
 DEMO_END = dt.date(2026, 11, 27)
 DEMO_SEED = 7
 CONFIG_NAME = "comove.demo.toml"
+ARCHIVE_DAYS = 10
 
 
 @dataclass
@@ -92,7 +93,14 @@ def run_demo(folder: Path, *, log: Callable[[str], None] = print) -> DemoReport:
     evaluation = backfill(store, settings, None, None)
     log(f"backfill: {evaluation.days_written} business days evaluated; "
         f"{evaluation.opened} alerts opened, {evaluation.cleared} cleared")
+    # The latest digest, and the ones before it in the archive so the pages link a few
+    # evenings (the evening each hedge alert opened among them).
+    days = [d.date() for d in closes.index[-ARCHIVE_DAYS:]]
+    for day in days[:-1]:
+        render_digest_files(store, settings, day)
     digest = render_digest_files(store, settings, DEMO_END)
+    log(f"digests: {len(days)} evenings rendered to {digest.folder.parent} "
+        "(nothing is sent: the demo has no SMTP settings)")
     pages = pages_folder(settings)
     build_pages(store, settings, pages)
     store.dispose()

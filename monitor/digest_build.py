@@ -213,6 +213,12 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
                            return_a=float(matrix[int(r), ia]), return_b=float(matrix[int(r), ib]))
                 for r, c in zip(rows, contributions, strict=True)
             ]
+    elif isinstance(getattr(rule, "targets", None), GroupTargets) and primary and t >= 0:
+        members = [column[s] for s in inputs.groups.get(a_text, ()) if s in column]
+        if len(members) >= 2:
+            last = list(stream(matrix[:, members], primary, start=t, stop=t + 1,
+                               level=inputs.level))[-1]
+            value = basket_gauge(last.value, np.arange(len(members)), t).value
     elif event:
         value = float(event.get("value") or math.nan)
         low = float(event.get("low") or math.nan)
