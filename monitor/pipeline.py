@@ -452,10 +452,10 @@ def _commit_days(store: Store, plan: Plan, scope: str, book: AlertBook, days: li
                  watermark: int, report: EvaluationReport, now: dt.datetime) -> None:
     rules = list(plan.rule_names)
     with store.begin() as conn:
-        touched: set[int] = set()
+        touched = alerts_store.delete_events_between(conn, rules, days[0].date, days[-1].date)
+        touched |= alerts_store.write_events(
+            conn, _event_rows(plan, [e for day in days for e in day.events]))
         for day in days:
-            touched |= alerts_store.delete_events_on(conn, rules, day.date)
-            touched |= alerts_store.write_events(conn, _event_rows(plan, day.events))
             for event in day.events:
                 if event.event == "opened":
                     report.opened += 1
@@ -465,12 +465,10 @@ def _commit_days(store: Store, plan: Plan, scope: str, book: AlertBook, days: li
                     report.reminders += 1
         alerts_store.refresh_states(conn, touched)
         last = days[-1].date
-        for rule in plan.rules:
-            for alert in book.open_alerts(rule):
-                alerts_store.update_open_alert(
-                    conn, alert.key.rule, alert.key.target, alert.key.opened,
-                    peak_value=alert.peak_value, peak_on=alert.peak_date,
-                    last_value=alert.last_value, last_on=last)
+        alerts_store.update_open_alerts(conn, [
+            (alert.key.rule, alert.key.target, alert.key.opened, alert.peak_value,
+             alert.peak_date, alert.last_value, last)
+            for rule in plan.rules for alert in book.open_alerts(rule)])
         alerts_store.save_state(
             conn, alerts_store.SavedState(scope, last, watermark, book.snapshot()), now)
     report.days_written += len(days)

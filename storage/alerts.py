@@ -13,7 +13,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import Connection, and_, delete, func, or_, select
+from sqlalchemy import Connection, and_, bindparam, delete, func, or_, select
 
 from storage.schema import acknowledgements, alert_events, alerts, evaluation_state, mutes
 
@@ -55,84 +55,129 @@ class EventRow:
 
 def delete_events_on(conn: Connection, rules: Sequence[str], date: dt.date) -> set[int]:
     """Remove the events of `rules` dated `date`; returns the alert ids they belonged to."""
-    ids = set(conn.execute(
-        select(alert_events.c.alert_id).where(alert_events.c.rule.in_(list(rules)),
-                                              alert_events.c.date == date)
-    ).scalars())
+    return delete_events_between(conn, rules, date, date)
+
+
+def delete_events_between(conn: Connection, rules: Sequence[str], first: dt.date,
+                          last: dt.date) -> set[int]:
+    """Remove the events of `rules` dated `first` to `last`; returns their alert ids."""
+    where = and_(alert_events.c.rule.in_(list(rules)), alert_events.c.date >= first,
+                 alert_events.c.date <= last)
+    ids = set(conn.execute(select(alert_events.c.alert_id).where(where)).scalars())
     if ids:
-        conn.execute(delete(alert_events).where(alert_events.c.rule.in_(list(rules)),
-                                                alert_events.c.date == date))
+        conn.execute(delete(alert_events).where(where))
     return ids
 
 
-def _alert_id(conn: Connection, rule: str, target: str, opened_on: dt.date) -> int | None:
-    return conn.execute(
-        select(alerts.c.id).where(alerts.c.rule == rule, alerts.c.target == target,
-                                  alerts.c.opened_on == opened_on)
-    ).scalar()
-
-
 def write_events(conn: Connection, events: Iterable[EventRow]) -> set[int]:
-    """Insert events, creating each alert row the first time its key is seen."""
-    touched: set[int] = set()
-    for ev in events:
-        alert_id = _alert_id(conn, ev.rule, ev.target, ev.opened_on)
-        if alert_id is None:
-            result = conn.execute(alerts.insert().values(
-                rule=ev.rule, target=ev.target, opened_on=ev.opened_on,
-                first_breach_on=ev.first_breach_on, rule_kind=ev.rule_kind,
-                severity=ev.severity, measure=ev.measure, state="open",
-                level=_num(ev.level), opened_value=_num(ev.value), announced=ev.announce,
-            ))
-            key = result.inserted_primary_key
-            assert key is not None
-            alert_id = int(key[0])
-        conn.execute(alert_events.insert().values(
-            alert_id=alert_id, rule=ev.rule, date=ev.date, event=ev.event, value=_num(ev.value),
-            level=_num(ev.level), low=_num(ev.low), high=_num(ev.high), n=_num(ev.n),
-            z=_num(ev.z), p=_num(ev.p), reference=_num(ev.reference), days_held=ev.days_held,
-            announce=ev.announce,
-        ))
-        conn.execute(alerts.update().where(alerts.c.id == alert_id).values(
-            peak_value=_num(ev.peak_value), peak_on=ev.peak_on, last_value=_num(ev.value),
-            last_on=ev.date,
-        ))
-        touched.add(alert_id)
-    return touched
+    """Insert events in bulk, creating each alert row the first time its key is seen."""
+    rows = list(events)
+    if not rows:
+        return set()
+    keys = {(e.rule, e.target, e.opened_on) for e in rows}
+    ids = _alert_ids(conn, keys)
+    fresh: dict[tuple[str, str, dt.date], EventRow] = {}
+    for e in rows:
+        key = (e.rule, e.target, e.opened_on)
+        if key not in ids and key not in fresh:
+            fresh[key] = e
+    if fresh:
+        conn.execute(alerts.insert(), [
+            {"rule": e.rule, "target": e.target, "opened_on": e.opened_on,
+             "first_breach_on": e.first_breach_on, "rule_kind": e.rule_kind,
+             "severity": e.severity, "measure": e.measure, "state": "open",
+             "level": _num(e.level), "opened_value": _num(e.value), "announced": e.announce}
+            for e in fresh.values()
+        ])
+        ids.update(_alert_ids(conn, set(fresh)))
+    conn.execute(alert_events.insert(), [
+        {"alert_id": ids[(e.rule, e.target, e.opened_on)], "rule": e.rule, "date": e.date,
+         "event": e.event, "value": _num(e.value), "level": _num(e.level), "low": _num(e.low),
+         "high": _num(e.high), "n": _num(e.n), "z": _num(e.z), "p": _num(e.p),
+         "reference": _num(e.reference), "days_held": e.days_held, "announce": e.announce}
+        for e in rows
+    ])
+    latest: dict[int, EventRow] = {}
+    for e in rows:
+        alert_id = ids[(e.rule, e.target, e.opened_on)]
+        if alert_id not in latest or e.date >= latest[alert_id].date:
+            latest[alert_id] = e
+    conn.execute(
+        alerts.update().where(alerts.c.id == bindparam("b_id")).values(
+            peak_value=bindparam("b_peak"), peak_on=bindparam("b_peak_on"),
+            last_value=bindparam("b_last"), last_on=bindparam("b_last_on")),
+        [{"b_id": alert_id, "b_peak": _num(e.peak_value), "b_peak_on": e.peak_on,
+          "b_last": _num(e.value), "b_last_on": e.date} for alert_id, e in latest.items()],
+    )
+    return set(latest)
 
 
-def update_open_alert(conn: Connection, rule: str, target: str, opened_on: dt.date, *,
-                      peak_value: float, peak_on: dt.date, last_value: float,
-                      last_on: dt.date) -> None:
-    """Keep an open alert's peak and latest value current between its events."""
-    conn.execute(alerts.update().where(
-        alerts.c.rule == rule, alerts.c.target == target, alerts.c.opened_on == opened_on
-    ).values(peak_value=_num(peak_value), peak_on=peak_on, last_value=_num(last_value),
-             last_on=last_on))
+def _alert_ids(conn: Connection, keys: set[tuple[str, str, dt.date]]
+               ) -> dict[tuple[str, str, dt.date], int]:
+    if not keys:
+        return {}
+    rules = sorted({k[0] for k in keys})
+    first = min(k[2] for k in keys)
+    found = conn.execute(
+        select(alerts.c.id, alerts.c.rule, alerts.c.target, alerts.c.opened_on)
+        .where(alerts.c.rule.in_(rules), alerts.c.opened_on >= first)
+    ).all()
+    return {(r.rule, r.target, r.opened_on): int(r.id) for r in found
+            if (r.rule, r.target, r.opened_on) in keys}
+
+
+def update_open_alerts(
+    conn: Connection,
+    rows: Sequence[tuple[str, str, dt.date, float, dt.date, float, dt.date]],
+) -> None:
+    """Keep open alerts' peak and latest value current between their events: rows of
+    (rule, target, opened_on, peak_value, peak_on, last_value, last_on)."""
+    if not rows:
+        return
+    conn.execute(
+        alerts.update().where(alerts.c.rule == bindparam("b_rule"),
+                              alerts.c.target == bindparam("b_target"),
+                              alerts.c.opened_on == bindparam("b_opened"))
+        .values(peak_value=bindparam("b_peak"), peak_on=bindparam("b_peak_on"),
+                last_value=bindparam("b_last"), last_on=bindparam("b_last_on")),
+        [{"b_rule": r, "b_target": t, "b_opened": o, "b_peak": _num(pv), "b_peak_on": po,
+          "b_last": _num(lv), "b_last_on": lo} for r, t, o, pv, po, lv, lo in rows],
+    )
 
 
 def refresh_states(conn: Connection, alert_ids: Iterable[int]) -> None:
     """Derive each alert's state from its events: cleared when a cleared event exists,
     open while its opened event exists, otherwise withdrawn (kept when acknowledged,
     deleted when nothing refers to it)."""
-    for alert_id in sorted(set(alert_ids)):
-        kinds = dict(conn.execute(
-            select(alert_events.c.event, func.min(alert_events.c.date))
-            .where(alert_events.c.alert_id == alert_id).group_by(alert_events.c.event)
-        ).all())
-        if "cleared" in kinds:
-            values: dict[str, Any] = {"state": "cleared", "cleared_on": kinds["cleared"]}
-        elif "opened" in kinds:
-            values = {"state": "open", "cleared_on": None}
-        else:
-            acked = conn.execute(select(func.count()).select_from(acknowledgements)
-                                 .where(acknowledgements.c.alert_id == alert_id)).scalar()
-            if not acked:
-                conn.execute(delete(alert_events).where(alert_events.c.alert_id == alert_id))
-                conn.execute(delete(alerts).where(alerts.c.id == alert_id))
-                continue
-            values = {"state": "withdrawn", "cleared_on": None}
-        conn.execute(alerts.update().where(alerts.c.id == alert_id).values(**values))
+    wanted = sorted(set(alert_ids))
+    for chunk in (wanted[i:i + 500] for i in range(0, len(wanted), 500)):
+        kinds: dict[int, dict[str, dt.date]] = {alert_id: {} for alert_id in chunk}
+        for alert_id, event, first in conn.execute(
+            select(alert_events.c.alert_id, alert_events.c.event, func.min(alert_events.c.date))
+            .where(alert_events.c.alert_id.in_(chunk))
+            .group_by(alert_events.c.alert_id, alert_events.c.event)
+        ).all():
+            kinds[alert_id][event] = first
+        acked = set(conn.execute(select(acknowledgements.c.alert_id)
+                                 .where(acknowledgements.c.alert_id.in_(chunk))).scalars())
+        updates = []
+        gone = []
+        for alert_id, seen in kinds.items():
+            if "cleared" in seen:
+                updates.append({"b_id": alert_id, "b_state": "cleared",
+                                "b_cleared": seen["cleared"]})
+            elif "opened" in seen:
+                updates.append({"b_id": alert_id, "b_state": "open", "b_cleared": None})
+            elif alert_id in acked:
+                updates.append({"b_id": alert_id, "b_state": "withdrawn", "b_cleared": None})
+            else:
+                gone.append(alert_id)
+        if updates:
+            conn.execute(alerts.update().where(alerts.c.id == bindparam("b_id")).values(
+                state=bindparam("b_state"), cleared_on=bindparam("b_cleared")), updates)
+        if gone:
+            conn.execute(delete(alert_events).where(alert_events.c.alert_id.in_(gone)))
+            conn.execute(delete(alerts).where(alerts.c.id.in_(gone)))
 
 
 def withdraw_after(conn: Connection, rules: Sequence[str], date: dt.date) -> None:
