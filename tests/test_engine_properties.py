@@ -31,7 +31,7 @@ def test_values_are_symmetric_and_inside_minus_one_one(returns: np.ndarray, spec
         assert np.all(np.abs(finite) <= 1.0)
         assert np.array_equal(np.isnan(day.value), np.isnan(day.value.T))
         both = np.isfinite(day.value)
-        assert np.all(np.abs(day.value - day.value.T)[both] <= 1e-15)
+        assert np.all(np.abs(day.value - day.value.T)[both] <= 1e-14)
         assert not np.any(np.isinf(day.value))
 
 

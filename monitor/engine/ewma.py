@@ -42,7 +42,16 @@ import numpy as np
 import numpy.typing as npt
 
 from monitor._typing import Returns2D
-from monitor.engine.kernels import FloatArray, Moments, finish, masked_sums, moments, uniform_sums
+from monitor.engine.kernels import (
+    STALE_RATIO,
+    FloatArray,
+    Moments,
+    finish,
+    masked_sums,
+    moments,
+    outputs,
+    uniform_sums,
+)
 from monitor.engine.layout import BoolArray, Layout
 from monitor.engine.rolling import overlay
 from monitor.engine.spec import Measure
@@ -251,7 +260,9 @@ def ewma_tile(
             moments = _empty_moments(sub, uniform=uniform)
         states.append(_State(sub, moments, uniform, block_common))
     days = (
-        _days(state, shifted, valid, lam, centred, measure.min_count, start, stop)
+        _uniform_days(state, shifted, lam, centred, measure.min_count, start, stop)
+        if state.uniform
+        else _days(state, shifted, valid, lam, centred, measure.min_count, start, stop)
         for state in states
     )
     base, *rest = days
@@ -297,3 +308,156 @@ def _days(
             state.moments.weight = lam * state.moments.weight
             state.moments.weight2 = lam * lam * state.moments.weight2
         yield last
+
+
+UNIFORM_CHUNK_DAYS = 32
+"""Most days whose rank-one updates the uniform block computes in one batched product."""
+UNIFORM_CHUNK_BYTES = 16 * 2**20
+"""Memory those batched updates may take."""
+_SMALLEST_SCALE = 1e-150
+
+
+def _uniform_days(
+    state: _State,
+    shifted: Returns2D,
+    lam: float,
+    centred: bool,
+    min_count: int,
+    start: int,
+    stop: int,
+) -> Iterator[tuple[FloatArray, FloatArray, BoolArray]]:
+    """The recursion of a block whose pairs share one history of weights, chunk by chunk.
+
+    Every pair then has the same ``a`` and ``b`` each day, and means and variances are per
+    instrument. The covariance is kept as ``cov_t = A_t * K_t`` with ``A_t`` the product of
+    the ``a`` since the chunk began, so that ``K_t = K_{t-1} + (a b / A_t) u_x u_y'``: the
+    chunk's rank-one terms are one batched product and each day costs one addition, two
+    scalings and the clip over the pairs. ``A`` is re-based when it gets small, and is
+    undefined only on a pair's first observation (``a = 0``), where the covariance restarts
+    at zero.
+    """
+    sub = state.layout
+    m = state.moments
+    if state.common is None:
+        raise ValueError("a uniform block needs its common rows")
+    mean_left, var_left = m.mean_left.reshape(-1).copy(), m.var_left.reshape(-1).copy()
+    mean_right, var_right = m.mean_right.reshape(-1).copy(), m.var_right.reshape(-1).copy()
+    symmetric = sub.symmetric
+    weight, weight2 = float(m.weight), float(m.weight2)
+    cov = np.array(np.broadcast_to(m.cov, sub.shape))
+    last: tuple[FloatArray, FloatArray, BoolArray] | None = None
+    pairs = int(np.prod(sub.shape))
+    size = int(max(1, min(UNIFORM_CHUNK_DAYS, UNIFORM_CHUNK_BYTES // (8 * max(pairs, 1)))))
+    for a0 in range(start, stop, size):
+        b0 = min(stop, a0 + size)
+        rows = shifted[a0:b0]
+        present = state.common[a0:b0]
+        days = b0 - a0
+        # per-day scalars and per-instrument vectors, in order
+        factor = np.ones(days)  # a_t
+        gain = np.zeros(days)  # a_t b_t (b_t for mean=zero)
+        neff = np.zeros(days)
+        u_left = np.zeros((days, sub.left_index.size))
+        u_right = u_left if symmetric else np.zeros((days, sub.right_index.size))
+        moments_left = []
+        moments_right = []
+        for c in range(days):
+            weight = lam * weight + float(present[c])
+            weight2 = lam * lam * weight2 + float(present[c])
+            neff[c] = weight * weight / weight2 if weight2 > 0 else 0.0
+            if present[c]:
+                b = 1.0 / weight
+                a = 1.0 - b
+                x_left = rows[c, sub.left_index]
+                x_right = x_left if symmetric else rows[c, sub.right_index]
+                if centred:
+                    dev_left = x_left - mean_left
+                    var_left = a * var_left + a * b * dev_left * dev_left
+                    mean_left = mean_left + b * dev_left
+                    u_left[c] = dev_left
+                    if not symmetric:
+                        dev_right = x_right - mean_right
+                        var_right = a * var_right + a * b * dev_right * dev_right
+                        mean_right = mean_right + b * dev_right
+                        u_right[c] = dev_right
+                    gain[c] = a * b
+                else:
+                    var_left = a * var_left + b * x_left * x_left
+                    u_left[c] = x_left
+                    if not symmetric:
+                        var_right = a * var_right + b * x_right * x_right
+                        u_right[c] = x_right
+                    gain[c] = b
+                factor[c] = a
+            moments_left.append((mean_left, var_left))
+            moments_right.append((mean_left, var_left) if symmetric else (mean_right, var_right))
+        # scale A_t relative to the chunk start; re-based on a restart or when tiny
+        scale = np.empty(days)
+        restart = np.zeros(days, dtype=bool)
+        running = 1.0
+        for c in range(days):
+            if factor[c] == 0.0 or running * factor[c] < _SMALLEST_SCALE:
+                restart[c] = True
+                running = 1.0
+            else:
+                running *= factor[c]
+            scale[c] = running
+        coefficient = gain / scale
+        updates = sub.cross((u_left * coefficient[:, None])[:, :, None], u_right[:, :, None])
+        kept = cov  # K at the chunk start, where A = 1
+        before = 1.0
+        for c in range(days):
+            if restart[c]:
+                kept *= factor[c] * before  # a new segment: K = cov, A = 1 (0 on a restart)
+            if present[c]:
+                kept += updates[c]
+            before = scale[c]
+            if present[c] or last is None:
+                mean_l, var_l = moments_left[c]
+                mean_r, var_r = moments_right[c]
+                last = _uniform_result(
+                    sub, kept, scale[c], mean_l, var_l, mean_r, var_r, neff[c], centred, min_count
+                )
+            yield last
+        cov = kept * scale[days - 1]
+    m.weight, m.weight2 = np.asarray(weight), np.asarray(weight2)
+    m.mean_left, m.var_left = sub.left(mean_left), sub.left(var_left)
+    m.mean_right = sub.right(mean_left if symmetric else mean_right)
+    m.var_right = sub.right(var_left if symmetric else var_right)
+    m.cov = cov
+
+
+def _uniform_result(
+    sub: Layout,
+    kept: FloatArray,
+    scale: float,
+    mean_left: FloatArray,
+    var_left: FloatArray,
+    mean_right: FloatArray,
+    var_right: FloatArray,
+    neff: float,
+    centred: bool,
+    min_count: int,
+) -> tuple[FloatArray, FloatArray, BoolArray]:
+    """One day's arrays of a uniform block from ``cov = scale * kept``."""
+    if centred:
+        flat_left = var_left <= STALE_RATIO * (var_left + mean_left * mean_left)
+        flat_right = var_right <= STALE_RATIO * (var_right + mean_right * mean_right)
+    else:
+        flat_left = var_left <= 0.0
+        flat_right = var_right <= 0.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inv_left = np.where(flat_left, 0.0, scale / np.sqrt(var_left))
+        inv_right = np.where(flat_right, 0.0, 1.0 / np.sqrt(var_right))
+    value = np.multiply(kept, sub.left(inv_left))
+    value *= sub.right(inv_right)
+    result = outputs(
+        value,
+        np.float64(neff),
+        sub.left(flat_left),
+        sub.right(flat_right),
+        sub.shape,
+        min_count,
+    )
+    result[0].flags.writeable = False
+    return result

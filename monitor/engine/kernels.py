@@ -222,23 +222,27 @@ def masked_sums(
         w_mask_left, w_y_left = mask_left * w, y_left * w
         w2_mask_left = w_mask_left * w if squares else None
 
-    cross = layout.cross
-    s_left = cross(w_y_left, mask_right)
-    s_left_sq = cross(w_y_left * y_left, mask_right)
+    # grouped by right factor: three products (two for a symmetric tile) instead of seven
+    by_mask = [w_mask_left, w_y_left, w_y_left * y_left]
+    if w2_mask_left is not None:
+        by_mask.append(w2_mask_left)
+    on_mask = layout.cross_many(by_mask, mask_right)
+    s0, s_left, s_left_sq = on_mask[:3]
     if same:
+        s_cross = layout.cross(w_y_left, y_right)
         s_right = np.swapaxes(s_left, -1, -2)
         s_right_sq = np.swapaxes(s_left_sq, -1, -2)
     else:
-        s_right = cross(w_mask_left, y_right)
-        s_right_sq = cross(w_mask_left, y_right * y_right)
+        s_cross, s_right = layout.cross_many([w_y_left, w_mask_left], y_right)
+        s_right_sq = layout.cross(w_mask_left, y_right * y_right)
     return Sums(
-        weight=cross(w_mask_left, mask_right),
-        weight2=None if w2_mask_left is None else cross(w2_mask_left, mask_right),
+        weight=s0,
+        weight2=on_mask[3] if w2_mask_left is not None else None,
         left=s_left,
         right=s_right,
         left_sq=s_left_sq,
         right_sq=s_right_sq,
-        cross=cross(w_y_left, y_right),
+        cross=s_cross,
     )
 
 
@@ -340,9 +344,9 @@ def constant(
     return out
 
 
-def _outputs(
+def outputs(
     value: FloatArray,
-    n: FloatArray,
+    n: FloatArray | np.float64,
     flat_left: BoolArray,
     flat_right: BoolArray,
     shape: tuple[int, ...],
@@ -410,7 +414,7 @@ def finish(
         value *= inv_right
     if value.shape != shape:
         value = np.broadcast_to(value, shape).copy()
-    return _outputs(value, n, flat_left, flat_right, shape, min_count)
+    return outputs(value, n, flat_left, flat_right, shape, min_count)
 
 
 def finish_uniform(
@@ -443,4 +447,4 @@ def finish_uniform(
     value -= (mean_left * scale_left) * (mean_right * scale_right)
     if value.shape != shape:
         value = np.broadcast_to(value, shape).copy()
-    return _outputs(value, np.array(sums.weight), flat_left, flat_right, shape, min_count)
+    return outputs(value, np.array(sums.weight), flat_left, flat_right, shape, min_count)

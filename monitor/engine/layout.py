@@ -53,6 +53,8 @@ class Layout(Protocol):
 
     def cross(self, a: FloatArray, b: FloatArray) -> FloatArray: ...
 
+    def cross_many(self, lefts: list[FloatArray], b: FloatArray) -> list[FloatArray]: ...
+
     def left(self, v: AnyArray) -> AnyArray: ...
 
     def right(self, v: AnyArray) -> AnyArray: ...
@@ -104,8 +106,25 @@ class TileLayout:
 
     def cross(self, a: FloatArray, b: FloatArray) -> FloatArray:
         """(..., I, W) x (..., J, W) -> (..., I, J): sum over the window axis of products."""
+        right = np.swapaxes(b, -1, -2)
+        if b.shape[-1] <= 8:
+            # a short inner axis (row updates): a contiguous copy keeps BLAS on its fast path
+            right = np.ascontiguousarray(right)
         # both operands row-major with the window last: one BLAS product per day
-        return np.matmul(a, np.swapaxes(b, -1, -2))
+        return np.matmul(a, right)
+
+    def cross_many(self, lefts: list[FloatArray], b: FloatArray) -> list[FloatArray]:
+        """``[cross(a, b) for a in lefts]`` as one product of the stacked left factors.
+
+        Fewer, larger matrix products: less call overhead, and a threaded BLAS has
+        enough work per call to pay for its threads.
+        """
+        if len(lefts) == 1:
+            return [self.cross(lefts[0], b)]
+        stacked = np.concatenate(lefts, axis=-2)
+        product = self.cross(stacked, b)
+        rows = self.rows.size
+        return [product[..., k * rows : (k + 1) * rows, :] for k in range(len(lefts))]
 
     def left(self, v: AnyArray) -> AnyArray:
         """(..., I) -> (..., I, 1)."""
@@ -171,6 +190,9 @@ class PairLayout:
     def cross(self, a: FloatArray, b: FloatArray) -> FloatArray:
         """(..., P, W) x (..., P, W) -> (..., P): per-pair sum over the window axis."""
         return np.einsum("...pw,...pw->...p", a, b)
+
+    def cross_many(self, lefts: list[FloatArray], b: FloatArray) -> list[FloatArray]:
+        return [self.cross(a, b) for a in lefts]
 
     def left(self, v: AnyArray) -> AnyArray:
         return v

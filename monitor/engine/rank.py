@@ -24,6 +24,9 @@ import numpy as np
 from monitor.engine.kernels import uniform_correlation
 from monitor.engine.layout import BoolArray, FloatArray, Layout, PairLayout
 
+PAIR_BATCH_BYTES = 32 * 2**20
+"""Working memory of one batch of pairs ranked on their own common days."""
+
 
 def average_ranks(values: FloatArray, axis: int = -1) -> FloatArray:
     """Ranks 1..k along ``axis`` with ties averaged; NaN entries get NaN and no rank.
@@ -126,17 +129,19 @@ def rank_block(
         rows, cols = layout.shape
         left_pos = np.repeat(np.arange(rows), cols)
         right_pos = np.tile(np.arange(cols), rows)
-    gathered_left = left[:, left_pos]
-    gathered_right = right_stack[:, right_pos]
-    count = (~(np.isnan(gathered_left) | np.isnan(gathered_right))).sum(axis=2).astype(np.float64)
+    valid_left = (~np.isnan(left)).astype(np.float64)
+    valid_right = valid_left if right is None else (~np.isnan(right_stack)).astype(np.float64)
+    count = layout.cross(valid_left, valid_right).reshape(days, -1)
     value = np.full(count.shape, np.nan)
     stale = np.zeros(count.shape, dtype=bool)
-    # rank only the (day, pair) cells that can have a value
+    # rank only the (day, pair) cells that can have a value, a bounded batch at a time
     day_idx, pair_idx = np.nonzero(count >= min_count)
-    if day_idx.size:
+    batch = max(1, PAIR_BATCH_BYTES // (8 * 10 * window))
+    for lo in range(0, day_idx.size, batch):
+        days_k, pairs_k = day_idx[lo : lo + batch], pair_idx[lo : lo + batch]
         part_value, _, part_flat = _pairwise_spearman(
-            gathered_left[day_idx, pair_idx][None], gathered_right[day_idx, pair_idx][None]
+            left[days_k, left_pos[pairs_k]][None], right_stack[days_k, right_pos[pairs_k]][None]
         )
-        value[day_idx, pair_idx] = part_value[0]
-        stale[day_idx, pair_idx] = part_flat[0]
+        value[days_k, pairs_k] = part_value[0]
+        stale[days_k, pairs_k] = part_flat[0]
     return value.reshape(shape), count.reshape(shape), stale.reshape(shape)

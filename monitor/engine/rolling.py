@@ -28,17 +28,12 @@ from collections.abc import Iterator
 import numpy as np
 
 from monitor._typing import Returns2D
-from monitor.engine.kernels import (
-    finish,
-    finish_uniform,
-    masked_sums,
-    moments,
-    uniform_sums,
-)
+from monitor.engine.kernels import STALE_RATIO, finish, masked_sums, moments, outputs
 from monitor.engine.layout import BoolArray, FloatArray, IntArray, Layout, Selector
 from monitor.engine.rank import rank_block
 from monitor.engine.spec import Measure
 from monitor.engine.windows import (
+    DEFAULT_CHUNK_BYTES,
     chunk_days,
     chunks,
     column_shift,
@@ -67,6 +62,92 @@ def overlay(
         yield value, n, stale
 
 
+class _Side:
+    """One side of a fully observed block over a chunk: window means, deviations, updates.
+
+    With the window mean ``m`` before and ``m'`` after day t's update (row ``x`` enters,
+    row ``z`` leaves, the count stays W), the centred cross-product matrix changes by
+    ``(x - m)(x - m')' - (z - m)(z - m')'``; both factors are per instrument, so a whole
+    chunk of updates is one batched product of rank two.
+    """
+
+    def __init__(
+        self, returns: Returns2D, columns: IntArray, shift: FloatArray, a: int, b: int, window: int
+    ) -> None:
+        rows = returns[a - window + 1 : b][:, columns] - shift[columns]
+        anchor = rows[:window]
+        entering = rows[window:]
+        leaving = rows[: b - a - 1]
+        totals = np.concatenate([anchor.sum(axis=0)[None], entering - leaving])
+        np.cumsum(totals, axis=0, out=totals)
+        self.mean = totals / window  # (days, K): window mean of each day
+        before, after = self.mean[:-1], self.mean[1:]
+        self.anchor_deviation = np.ascontiguousarray((anchor - self.mean[0]).T)[None]
+        self.enter_before = entering - before
+        self.enter_after = entering - after
+        self.leave_before = leaving - before
+        self.leave_after = leaving - after
+        sumsq = np.concatenate(
+            [
+                np.einsum("kw,kw->k", self.anchor_deviation[0], self.anchor_deviation[0])[None],
+                self.enter_before * self.enter_after - self.leave_before * self.leave_after,
+            ]
+        )
+        np.cumsum(sumsq, axis=0, out=sumsq)
+        self.sumsq = np.maximum(sumsq, 0.0)  # (days, K): sum of squared deviations
+
+    def flat(self, window: int) -> BoolArray:
+        """(days, K): zero variance up to rounding (relative to the raw moment about the shift)."""
+        raw = self.sumsq + window * self.mean * self.mean
+        return self.sumsq <= STALE_RATIO * raw
+
+    def scale(self, flat: BoolArray) -> FloatArray:
+        """(days, K): 1 / sqrt(sum of squared deviations), 0 where flat."""
+        return np.where(flat, 0.0, 1.0 / np.sqrt(np.where(flat, 1.0, self.sumsq)))
+
+
+def _complete_days(
+    returns: Returns2D,
+    sub: Layout,
+    shift: FloatArray,
+    a: int,
+    b: int,
+    window: int,
+) -> Iterator[DayArrays]:
+    """Rolling Pearson of a block whose instruments have every return in the chunk's windows.
+
+    The chunk starts from the exact two-pass centred cross products of its first window;
+    each later day adds the rank-two update of :class:`_Side`, and r is the centred cross
+    product scaled by both sides' ``1 / sqrt(sum of squared deviations)``.
+    """
+    left = _Side(returns, sub.left_index, shift, a, b, window)
+    right = left if sub.symmetric else _Side(returns, sub.right_index, shift, a, b, window)
+    comoment = sub.cross(left.anchor_deviation, right.anchor_deviation)[0]
+    if b - a > 1:
+        updates = sub.cross(
+            np.stack([left.enter_before, left.leave_before], axis=2),
+            np.stack([right.enter_after, -right.leave_after], axis=2),
+        )
+        # rank-two updates for every day of the chunk: one batched product
+    flat_left = left.flat(window) | flat_columns(returns, sub.left_index, a, b, window)
+    flat_right = (
+        flat_left
+        if right is left
+        else (right.flat(window) | flat_columns(returns, sub.right_index, a, b, window))
+    )
+    scale_left = left.scale(flat_left)
+    scale_right = scale_left if right is left else right.scale(flat_right)
+    count = np.float64(window)
+    for c in range(b - a):
+        if c:
+            comoment += updates[c - 1]
+        value = np.multiply(comoment, sub.left(scale_left[c]))
+        value *= sub.right(scale_right[c])
+        yield outputs(
+            value, count, sub.left(flat_left[c]), sub.right(flat_right[c]), sub.shape, window
+        )
+
+
 def _pearson_days(
     returns: Returns2D,
     sub: Layout,
@@ -82,36 +163,45 @@ def _pearson_days(
     The chunk's entering/leaving sums are computed together; the running totals and the
     correlation are then formed day by day, so the arrays touched stay cache-sized.
     """
+    if good:
+        yield from _complete_days(returns, sub, shift, a, b, window)
+        return
+    # the masked sums hold seven arrays of pairs per day: shorter runs between anchors
+    size = max(1, min(b - a, DEFAULT_CHUNK_BYTES // (8 * 8 * int(np.prod(sub.shape)) + 1)))
+    for lo, hi in chunks(a, b, size):
+        yield from _masked_days(returns, sub, shift, lo, hi, window, min_count)
+
+
+def _masked_days(
+    returns: Returns2D,
+    sub: Layout,
+    shift: FloatArray,
+    a: int,
+    b: int,
+    window: int,
+    min_count: int,
+) -> Iterator[DayArrays]:
+    """Pairwise-complete rolling Pearson: anchored masked sums plus entering/leaving rows."""
     sides = [sub.left_index] if sub.symmetric else [sub.left_index, sub.right_index]
     anchors = [
         window_stack(returns, cols, a, a + 1, window) - shift[cols][:, None] for cols in sides
     ]
     deltas = [delta_stack(returns, cols, a, b, window) - shift[cols][:, None] for cols in sides]
-    if good:
-        running = uniform_sums(sub, anchors[0], anchors[1] if len(sides) > 1 else None, None)
-        steps = uniform_sums(
-            sub, deltas[0], deltas[1] if len(sides) > 1 else None, _ENTER_LEAVE, squares=False
-        )
-    else:
-        running = masked_sums(sub, anchors[0], anchors[-1], None)
-        steps = masked_sums(sub, deltas[0], deltas[-1], _ENTER_LEAVE, squares=False)
+    running = masked_sums(sub, anchors[0], anchors[-1], None)
+    steps = masked_sums(sub, deltas[0], deltas[-1], _ENTER_LEAVE, squares=False)
     flat_left = flat_columns(returns, sub.left_index, a, b, window)
     flat_right = flat_columns(returns, sub.right_index, a, b, window)
     today = running.day(0).copy()
     for c in range(b - a):
         if c:
             today.add(steps.day(c - 1))
-        flat = (sub.left(flat_left[c]), sub.right(flat_right[c]))
-        if good:
-            yield finish_uniform(today, sub.shape, min_count=min_count, flat=flat)
-        else:
-            yield finish(
-                moments(today, centred=True),
-                sub.shape,
-                centred=True,
-                min_count=min_count,
-                flat=flat,
-            )
+        yield finish(
+            moments(today, centred=True),
+            sub.shape,
+            centred=True,
+            min_count=min_count,
+            flat=(sub.left(flat_left[c]), sub.right(flat_right[c])),
+        )
 
 
 def _block(
@@ -170,7 +260,10 @@ def window_tile(
     columns = np.union1d(layout.left_index, layout.right_index)
     width = layout.left_index.size + (0 if layout.symmetric else layout.right_index.size)
     pair_count = int(np.prod(layout.shape))
-    size = chunk_days(pair_count, width, window if measure.kind == "rank" else 2, chunk)
+    if measure.kind == "rank":
+        size = chunk_days(pair_count, width, window, chunk, pair_arrays=4)
+    else:
+        size = chunk_days(pair_count, width, 2, chunk, pair_arrays=2)
     # the first W - 1 rows have windows cut at row 0, one length per day: one day at a time
     ramp_stop = min(stop, max(start, window - 1))
     for t in range(start, ramp_stop):

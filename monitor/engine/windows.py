@@ -34,7 +34,9 @@ def chunks(start: int, stop: int, size: int) -> Iterator[tuple[int, int]]:
         yield a, min(a + size, stop)
 
 
-def chunk_days(pair_count: int, columns: int, window: int, chunk: int | None) -> int:
+def chunk_days(
+    pair_count: int, columns: int, window: int, chunk: int | None, *, pair_arrays: int = 2
+) -> int:
     """Days per chunk so that a chunk's arrays stay near :data:`DEFAULT_CHUNK_BYTES`.
 
     Parameters
@@ -44,13 +46,15 @@ def chunk_days(pair_count: int, columns: int, window: int, chunk: int | None) ->
     columns : int
         Instrument columns gathered per day on both sides.
     window : int
-        Rows per window (1 for a recursion).
+        Rows per window held per day (a stack of windows), or 2 for running sums.
     chunk : int or None
         Caller's choice; used as given when not None.
+    pair_arrays : int
+        Arrays of ``pair_count`` entries a chunk holds per day.
     """
     if chunk is not None:
         return max(1, int(chunk))
-    per_day = 8 * (12 * pair_count + 6 * window * columns) + 1
+    per_day = 8 * (pair_arrays * pair_count + 6 * window * columns) + 1
     return int(max(1, min(MAX_CHUNK_DAYS, DEFAULT_CHUNK_BYTES // per_day)))
 
 
@@ -136,6 +140,21 @@ def delta_stack(returns: Returns2D, columns: IntArray, a: int, b: int, window: i
     return out
 
 
+def _sliding(reduce: np.ufunc, block: Returns2D, window: int) -> Returns2D:
+    """``reduce`` (fmax or fmin) over every run of ``window`` rows, by doubling.
+
+    After k rounds ``acc[s]`` covers rows ``s .. s + 2**k - 1``; two overlapping runs then
+    cover any length. ``log2(W)`` whole-array passes instead of W.
+    """
+    acc = block
+    span = 1
+    while 2 * span <= window:
+        acc = reduce(acc[:-span], acc[span:])
+        span *= 2
+    rest = window - span
+    return reduce(acc[: acc.shape[0] - rest], acc[rest:])
+
+
 def flat_columns(returns: Returns2D, columns: IntArray, a: int, b: int, window: int) -> BoolArray:
     """Instruments whose valid returns are all equal over the window of days ``a .. b-1``.
 
@@ -149,6 +168,5 @@ def flat_columns(returns: Returns2D, columns: IntArray, a: int, b: int, window: 
         False for a window with no valid return.
     """
     block = returns[a - window + 1 : b][:, columns]
-    view = sliding_window_view(block, window, axis=0)
     # fmax/fmin skip NaN without the all-NaN warning of nanmax
-    return np.fmax.reduce(view, axis=2) == np.fmin.reduce(view, axis=2)
+    return _sliding(np.fmax, block, window) == _sliding(np.fmin, block, window)
