@@ -46,6 +46,7 @@ from monitor.engine.kernels import (
     STALE_RATIO,
     FloatArray,
     Moments,
+    constant,
     finish,
     masked_sums,
     moments,
@@ -403,7 +404,18 @@ def _uniform_days(
                 running *= factor[c]
             scale[c] = running
         coefficient = gain / scale
-        updates = sub.cross((u_left * coefficient[:, None])[:, :, None], u_right[:, :, None])
+        # rank-one terms of every day: an outer product, no matrix multiply needed
+        updates = sub.left(u_left * coefficient[:, None]) * sub.right(u_right)
+        # per-day statistics of every instrument, for the whole chunk at once
+        mean_l = np.array([item[0] for item in moments_left])
+        var_l = np.array([item[1] for item in moments_left])
+        mean_r = np.array([item[0] for item in moments_right])
+        var_r = np.array([item[1] for item in moments_right])
+        flat_l, inv_l = _flat_and_inverse(mean_l, var_l, centred)
+        flat_r, inv_r = _flat_and_inverse(mean_r, var_r, centred)
+        inv_l *= scale[:, None]
+        any_flat = flat_l.any(axis=1) | flat_r.any(axis=1)
+        no_stale = constant(False, sub.shape, np.bool_)
         kept = cov  # K at the chunk start, where A = 1
         before = 1.0
         for c in range(days):
@@ -413,11 +425,22 @@ def _uniform_days(
                 kept += updates[c]
             before = scale[c]
             if present[c] or last is None:
-                mean_l, var_l = moments_left[c]
-                mean_r, var_r = moments_right[c]
-                last = _uniform_result(
-                    sub, kept, scale[c], mean_l, var_l, mean_r, var_r, neff[c], centred, min_count
-                )
+                value = np.multiply(kept, sub.left(inv_l[c]))
+                value *= sub.right(inv_r[c])
+                count = constant(neff[c], sub.shape)
+                if any_flat[c] or neff[c] < min_count * (1.0 - 1e-12):
+                    last = outputs(
+                        value,
+                        count,
+                        sub.left(flat_l[c]),
+                        sub.right(flat_r[c]),
+                        sub.shape,
+                        min_count,
+                    )
+                else:
+                    np.clip(value, -1.0, 1.0, out=value)
+                    last = (value, count, no_stale)
+                last[0].flags.writeable = False
             yield last
         cov = kept * scale[days - 1]
     m.weight, m.weight2 = np.asarray(weight), np.asarray(weight2)
@@ -427,37 +450,14 @@ def _uniform_days(
     m.cov = cov
 
 
-def _uniform_result(
-    sub: Layout,
-    kept: FloatArray,
-    scale: float,
-    mean_left: FloatArray,
-    var_left: FloatArray,
-    mean_right: FloatArray,
-    var_right: FloatArray,
-    neff: float,
-    centred: bool,
-    min_count: int,
-) -> tuple[FloatArray, FloatArray, BoolArray]:
-    """One day's arrays of a uniform block from ``cov = scale * kept``."""
+def _flat_and_inverse(
+    mean: FloatArray, var: FloatArray, centred: bool
+) -> tuple[BoolArray, FloatArray]:
+    """Zero-variance flags and ``1 / sqrt(var)`` (0 where flat) of (days, K) statistics."""
     if centred:
-        flat_left = var_left <= STALE_RATIO * (var_left + mean_left * mean_left)
-        flat_right = var_right <= STALE_RATIO * (var_right + mean_right * mean_right)
+        flat = var <= STALE_RATIO * (var + mean * mean)
     else:
-        flat_left = var_left <= 0.0
-        flat_right = var_right <= 0.0
+        flat = var <= 0.0
     with np.errstate(divide="ignore", invalid="ignore"):
-        inv_left = np.where(flat_left, 0.0, scale / np.sqrt(var_left))
-        inv_right = np.where(flat_right, 0.0, 1.0 / np.sqrt(var_right))
-    value = np.multiply(kept, sub.left(inv_left))
-    value *= sub.right(inv_right)
-    result = outputs(
-        value,
-        np.float64(neff),
-        sub.left(flat_left),
-        sub.right(flat_right),
-        sub.shape,
-        min_count,
-    )
-    result[0].flags.writeable = False
-    return result
+        inverse = np.where(flat, 0.0, 1.0 / np.sqrt(np.where(flat, 1.0, var)))
+    return flat, inverse

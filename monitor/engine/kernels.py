@@ -365,7 +365,9 @@ def outputs(
         stale = constant(False, shape, np.bool_)
     if any_flat or not all_enough:
         value[np.broadcast_to(stale | ~enough, shape)] = np.nan
-    if np.size(n) == 1:
+    if isinstance(n, np.ndarray) and n.shape == shape and not n.flags.writeable:
+        n_out = n  # already a read-only array of the right shape
+    elif np.size(n) == 1:
         n_out = constant(float(np.reshape(n, -1)[0]), shape)
     else:
         n_out = np.broadcast_to(n, shape)

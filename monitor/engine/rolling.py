@@ -24,11 +24,19 @@ days times the pairs, never the history.
 from __future__ import annotations
 
 from collections.abc import Iterator
+from dataclasses import dataclass
 
 import numpy as np
 
 from monitor._typing import Returns2D
-from monitor.engine.kernels import STALE_RATIO, finish, masked_sums, moments, outputs
+from monitor.engine.kernels import (
+    STALE_RATIO,
+    constant,
+    finish,
+    masked_sums,
+    moments,
+    outputs,
+)
 from monitor.engine.layout import BoolArray, FloatArray, IntArray, Layout, Selector
 from monitor.engine.rank import rank_block
 from monitor.engine.spec import Measure
@@ -62,48 +70,118 @@ def overlay(
         yield value, n, stale
 
 
-class _Side:
-    """One side of a fully observed block over a chunk: window means, deviations, updates.
+REANCHOR_RATIO = 10.0
+"""Re-anchor when the squared deviations an instrument's running sums have absorbed since the
+last anchor exceed this many times its current sum of squared deviations. The rounding left
+in each running sum then stays below about ``4 * 10 * 2.2e-16 = 1e-14`` of its value, a few
+times that in a correlation. With steady volatility this re-anchors about every 5 W days."""
 
-    With the window mean ``m`` before and ``m'`` after day t's update (row ``x`` enters,
-    row ``z`` leaves, the count stays W), the centred cross-product matrix changes by
-    ``(x - m)(x - m')' - (z - m)(z - m')'``; both factors are per instrument, so a whole
-    chunk of updates is one batched product of rank two.
+
+@dataclass
+class _Carry:
+    """Running centred cross products handed from one chunk to the next (fast path only)."""
+
+    day: int = -1
+    comoment: FloatArray | None = None
+    absorbed_left: FloatArray | None = None
+    absorbed_right: FloatArray | None = None
+
+
+class _Side:
+    """One side of a fully observed block: window means, deviations, updates, day by day.
+
+    Covers days ``first .. b-1``; day ``first`` is the anchor (its window's statistics are
+    exact two-pass values), the others are updates. With the window mean ``m`` before and
+    ``m'`` after day t's update (row ``x`` enters, row ``z`` leaves, the count stays W),
+    the centred cross-product matrix changes by ``(x - m)(x - m')' - (z - m)(z - m')'``;
+    both factors are per instrument, so a whole chunk of updates is one batched product of
+    rank two.
     """
 
     def __init__(
-        self, returns: Returns2D, columns: IntArray, shift: FloatArray, a: int, b: int, window: int
+        self,
+        returns: Returns2D,
+        columns: IntArray,
+        shift: FloatArray,
+        first: int,
+        b: int,
+        window: int,
     ) -> None:
-        rows = returns[a - window + 1 : b][:, columns] - shift[columns]
-        anchor = rows[:window]
-        entering = rows[window:]
-        leaving = rows[: b - a - 1]
+        self.rows = returns[first - window + 1 : b][:, columns] - shift[columns]
+        anchor = self.rows[:window]
+        entering = self.rows[window:]
+        leaving = self.rows[: b - first - 1]
         totals = np.concatenate([anchor.sum(axis=0)[None], entering - leaving])
         np.cumsum(totals, axis=0, out=totals)
         self.mean = totals / window  # (days, K): window mean of each day
         before, after = self.mean[:-1], self.mean[1:]
-        self.anchor_deviation = np.ascontiguousarray((anchor - self.mean[0]).T)[None]
         self.enter_before = entering - before
         self.enter_after = entering - after
         self.leave_before = leaving - before
         self.leave_after = leaving - after
+        deviation = anchor - self.mean[0]
         sumsq = np.concatenate(
             [
-                np.einsum("kw,kw->k", self.anchor_deviation[0], self.anchor_deviation[0])[None],
+                np.einsum("wk,wk->k", deviation, deviation)[None],
                 self.enter_before * self.enter_after - self.leave_before * self.leave_after,
             ]
         )
         np.cumsum(sumsq, axis=0, out=sumsq)
         self.sumsq = np.maximum(sumsq, 0.0)  # (days, K): sum of squared deviations
+        # squared size of what each update adds, for the re-anchoring rule
+        self.absorbed = np.abs(self.enter_before * self.enter_after) + np.abs(
+            self.leave_before * self.leave_after
+        )
+        self.window = window
 
-    def flat(self, window: int) -> BoolArray:
+    def reanchor(self, anchors: BoolArray) -> None:
+        """Restart the running sums of squared deviations from exact values on anchor days."""
+        days = np.flatnonzero(anchors)
+        if days.size == 0:
+            return
+        steps = np.diff(self.sumsq, axis=0)
+        for k, c in enumerate(days):
+            block = self.rows[c : c + self.window] - self.mean[c]
+            stop = days[k + 1] if k + 1 < days.size else self.sumsq.shape[0]
+            segment = np.concatenate(
+                [np.einsum("wk,wk->k", block, block)[None], steps[c : stop - 1]]
+            )
+            self.sumsq[c:stop] = np.maximum(np.cumsum(segment, axis=0), 0.0)
+
+    def deviations(self, c: int) -> FloatArray:
+        """(1, K, W): day c's window rows minus that day's mean (for an exact anchor)."""
+        block = self.rows[c : c + self.window] - self.mean[c]
+        return np.ascontiguousarray(block.T)[None]
+
+    def flat(self) -> BoolArray:
         """(days, K): zero variance up to rounding (relative to the raw moment about the shift)."""
-        raw = self.sumsq + window * self.mean * self.mean
+        raw = self.sumsq + self.window * self.mean * self.mean
         return self.sumsq <= STALE_RATIO * raw
 
     def scale(self, flat: BoolArray) -> FloatArray:
         """(days, K): 1 / sqrt(sum of squared deviations), 0 where flat."""
         return np.where(flat, 0.0, 1.0 / np.sqrt(np.where(flat, 1.0, self.sumsq)))
+
+
+def _anchor_days(
+    sides: list[_Side], flats: list[BoolArray], start: list[FloatArray] | None
+) -> tuple[BoolArray, list[FloatArray]]:
+    """Days (after the first) that need a fresh anchor, and what is absorbed at the end."""
+    days = sides[0].mean.shape[0]
+    absorbed = [np.zeros_like(s.sumsq[0]) for s in sides] if start is None else start
+    anchor = np.zeros(days, dtype=bool)
+    for c in range(1, days):
+        absorbed = [
+            total + side.absorbed[c - 1] for total, side in zip(absorbed, sides, strict=True)
+        ]
+        # a constant instrument has no variance to compare with; its values are NaN anyway
+        if any(
+            np.any((total > REANCHOR_RATIO * side.sumsq[c]) & ~flat[c])
+            for total, side, flat in zip(absorbed, sides, flats, strict=True)
+        ):
+            anchor[c] = True
+            absorbed = [np.zeros_like(total) for total in absorbed]
+    return anchor, absorbed
 
 
 def _complete_days(
@@ -113,39 +191,79 @@ def _complete_days(
     a: int,
     b: int,
     window: int,
+    carry: _Carry,
 ) -> Iterator[DayArrays]:
     """Rolling Pearson of a block whose instruments have every return in the chunk's windows.
 
-    The chunk starts from the exact two-pass centred cross products of its first window;
-    each later day adds the rank-two update of :class:`_Side`, and r is the centred cross
-    product scaled by both sides' ``1 / sqrt(sum of squared deviations)``.
+    The centred cross products come from the previous chunk (``carry``) or from an exact
+    two-pass anchor; each day adds the rank-two update of :class:`_Side`, and a fresh anchor
+    is taken whenever the rounding the running sums may hold could reach 1e-13 of a
+    correlation (:data:`REANCHOR_RATIO`), e.g. after a burst of large moves leaves the
+    window. r is the centred cross product scaled by both sides'
+    ``1 / sqrt(sum of squared deviations)``.
     """
-    left = _Side(returns, sub.left_index, shift, a, b, window)
-    right = left if sub.symmetric else _Side(returns, sub.right_index, shift, a, b, window)
-    comoment = sub.cross(left.anchor_deviation, right.anchor_deviation)[0]
-    if b - a > 1:
+    continuing = carry.day == a - 1 and carry.comoment is not None
+    first = a - 1 if continuing else a
+    left = _Side(returns, sub.left_index, shift, first, b, window)
+    right = left if sub.symmetric else _Side(returns, sub.right_index, shift, first, b, window)
+    days = b - first
+    if days > 1:
+        # rank-two updates for every day of the chunk: one batched product
         updates = sub.cross(
             np.stack([left.enter_before, left.leave_before], axis=2),
             np.stack([right.enter_after, -right.leave_after], axis=2),
         )
-        # rank-two updates for every day of the chunk: one batched product
-    flat_left = left.flat(window) | flat_columns(returns, sub.left_index, a, b, window)
+    flat_left = left.flat() | flat_columns(returns, sub.left_index, first, b, window)
     flat_right = (
         flat_left
         if right is left
-        else (right.flat(window) | flat_columns(returns, sub.right_index, a, b, window))
+        else (right.flat() | flat_columns(returns, sub.right_index, first, b, window))
     )
+    sides = [left] if right is left else [left, right]
+    flats = [flat_left] if right is left else [flat_left, flat_right]
+    previous = None
+    if continuing and carry.absorbed_left is not None:
+        previous = [carry.absorbed_left] + ([] if right is left else [carry.absorbed_right])
+    anchor, absorbed = _anchor_days(sides, flats, previous)  # type: ignore[arg-type]
+    if anchor.any():
+        for side in sides:
+            side.reanchor(anchor)
+        flat_left = left.flat() | flat_columns(returns, sub.left_index, first, b, window)
+        flat_right = (
+            flat_left
+            if right is left
+            else (right.flat() | flat_columns(returns, sub.right_index, first, b, window))
+        )
     scale_left = left.scale(flat_left)
     scale_right = scale_left if right is left else right.scale(flat_right)
-    count = np.float64(window)
-    for c in range(b - a):
+    # the count is W for every pair and day; most days have no flat instrument
+    count = constant(float(window), sub.shape)
+    no_stale = constant(False, sub.shape, np.bool_)
+    any_flat = flat_left.any(axis=1) | flat_right.any(axis=1)
+    if continuing and carry.comoment is not None:
+        comoment = carry.comoment
+    else:
+        comoment = sub.cross(left.deviations(0), right.deviations(0))[0]
+    for c in range(days):
         if c:
-            comoment += updates[c - 1]
+            if anchor[c]:
+                comoment = sub.cross(left.deviations(c), right.deviations(c))[0]
+            else:
+                comoment += updates[c - 1]
+        if continuing and c == 0:
+            continue  # the previous chunk's last day
         value = np.multiply(comoment, sub.left(scale_left[c]))
         value *= sub.right(scale_right[c])
-        yield outputs(
-            value, count, sub.left(flat_left[c]), sub.right(flat_right[c]), sub.shape, window
-        )
+        if any_flat[c]:
+            yield outputs(
+                value, count, sub.left(flat_left[c]), sub.right(flat_right[c]), sub.shape, window
+            )
+        else:
+            np.clip(value, -1.0, 1.0, out=value)
+            yield value, count, no_stale
+    carry.day, carry.comoment = b - 1, comoment
+    carry.absorbed_left = absorbed[0]
+    carry.absorbed_right = absorbed[-1]
 
 
 def _pearson_days(
@@ -157,6 +275,7 @@ def _pearson_days(
     b: int,
     window: int,
     min_count: int,
+    carry: _Carry,
 ) -> Iterator[DayArrays]:
     """Rolling Pearson of one block for days ``a .. b-1``, one day at a time.
 
@@ -164,7 +283,7 @@ def _pearson_days(
     correlation are then formed day by day, so the arrays touched stay cache-sized.
     """
     if good:
-        yield from _complete_days(returns, sub, shift, a, b, window)
+        yield from _complete_days(returns, sub, shift, a, b, window, carry)
         return
     # the masked sums hold seven arrays of pairs per day: shorter runs between anchors
     size = max(1, min(b - a, DEFAULT_CHUNK_BYTES // (8 * 8 * int(np.prod(sub.shape)) + 1)))
@@ -213,10 +332,16 @@ def _block(
     a: int,
     b: int,
     window: int,
+    carry: _Carry | None = None,
 ) -> Iterator[DayArrays]:
-    """Values, counts and stale flags of one block for days ``a .. b-1``, day by day."""
+    """Values, counts and stale flags of one block for days ``a .. b-1``, day by day.
+
+    ``carry`` hands the fast path's running sums from chunk to chunk; None: start afresh.
+    """
     if measure.kind == "rolling":
-        yield from _pearson_days(returns, sub, good, shift, a, b, window, measure.min_count)
+        yield from _pearson_days(
+            returns, sub, good, shift, a, b, window, measure.min_count, carry or _Carry()
+        )
         return
     left = window_stack(returns, sub.left_index, a, b, window)
     right = None if sub.symmetric else window_stack(returns, sub.right_index, a, b, window)
@@ -264,12 +389,37 @@ def window_tile(
         size = chunk_days(pair_count, width, window, chunk, pair_arrays=4)
     else:
         size = chunk_days(pair_count, width, 2, chunk, pair_arrays=2)
-    # the first W - 1 rows have windows cut at row 0, one length per day: one day at a time
+    carry = _Carry()
     ramp_stop = min(stop, max(start, window - 1))
-    for t in range(start, ramp_stop):
-        yield from _chunk(returns, measure, layout, columns, t, t + 1, t + 1)
-    for a, b in chunks(ramp_stop, stop, size):
-        yield from _chunk(returns, measure, layout, columns, a, b, window)
+    if measure.kind == "rank":
+        # the first W - 1 rows have windows cut at row 0, one length per day: a day at a time
+        for t in range(start, ramp_stop):
+            yield from _chunk(returns, measure, layout, columns, t, t + 1, t + 1, carry)
+    elif start < ramp_stop:
+        # cut windows as full windows with missing rows before row 0 (pairwise path)
+        yield from _chunk(returns, measure, layout, columns, start, ramp_stop, window, carry)
+    for lo, hi in _runs(returns, columns, ramp_stop, stop, window):
+        for a, b in chunks(lo, hi, size):
+            yield from _chunk(returns, measure, layout, columns, a, b, window, carry)
+
+
+def _runs(
+    returns: Returns2D, columns: IntArray, start: int, stop: int, window: int
+) -> list[tuple[int, int]]:
+    """Cut ``[start, stop)`` where the windows switch between "every instrument has every
+    return" and not, so that a chunk never mixes the two (a gap then sends only the days
+    whose windows hold it down the slower path, not a whole chunk)."""
+    if start >= stop:
+        return []
+    first = max(0, start - window + 1)
+    gap_rows = np.isnan(returns[first:stop][:, columns]).any(axis=1).astype(np.int64)
+    counts = np.concatenate([[0], np.cumsum(gap_rows)])
+    days = np.arange(start, stop)
+    lo = np.maximum(days - window + 1, 0) - first
+    complete = (counts[days - first + 1] - counts[lo]) == 0
+    edges = np.flatnonzero(complete[1:] != complete[:-1]) + 1 + start
+    bounds = [start, *edges.tolist(), stop]
+    return list(zip(bounds[:-1], bounds[1:], strict=True))
 
 
 def _chunk(
@@ -280,19 +430,23 @@ def _chunk(
     a: int,
     b: int,
     window: int,
+    carry: _Carry,
 ) -> Iterator[DayArrays]:
-    """Days ``a .. b-1`` with windows of ``window`` rows (all inside the matrix)."""
-    rows = returns[a - window + 1 : b][:, columns]
-    if window < measure.min_count:
+    """Days ``a .. b-1`` with windows of ``window`` rows (cut at row 0 before row W - 1)."""
+    first = a - window + 1
+    rows = returns[max(0, first) : b][:, columns]
+    if measure.kind == "rank" and window < measure.min_count:
         # too few rows for any value: only the counts are needed
         yield _counts_only(returns, layout, a, window)
         return
     complete = np.zeros(returns.shape[1], dtype=bool)
-    complete[columns] = (~np.isnan(rows)).all(axis=0)
+    complete[columns] = (~np.isnan(rows)).all(axis=0) & (first >= 0)
     shift = np.zeros(returns.shape[1])
     shift[columns] = column_shift(rows)
     fast, overrides = layout.split(complete[layout.left_index], complete[layout.right_index])
-    base = _block(returns, measure, layout, fast, shift, a, b, window)
+    if not (fast and not overrides):
+        carry.day = -1  # the running sums cannot continue across this chunk
+    base = _block(returns, measure, layout, fast, shift, a, b, window, carry)
     if not overrides:
         yield from base
         return

@@ -167,6 +167,9 @@ def flat_columns(returns: Returns2D, columns: IntArray, a: int, b: int, window: 
     (b - a, K) bool array
         False for a window with no valid return.
     """
-    block = returns[a - window + 1 : b][:, columns]
+    first = a - window + 1
+    block = returns[max(0, first) : b][:, columns]
+    if first < 0:
+        block = np.concatenate([np.full((-first, block.shape[1]), np.nan), block], axis=0)
     # fmax/fmin skip NaN without the all-NaN warning of nanmax
     return _sliding(np.fmax, block, window) == _sliding(np.fmin, block, window)
