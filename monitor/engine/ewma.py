@@ -414,7 +414,7 @@ def _uniform_days(
         flat_l, inv_l = _flat_and_inverse(mean_l, var_l, centred)
         flat_r, inv_r = _flat_and_inverse(mean_r, var_r, centred)
         inv_l *= scale[:, None]
-        any_flat = flat_l.any(axis=1) | flat_r.any(axis=1)
+        any_flat: BoolArray = np.asarray(flat_l.any(axis=1) | flat_r.any(axis=1))
         no_stale = constant(False, sub.shape, np.bool_)
         kept = cov  # K at the chunk start, where A = 1
         before = 1.0

@@ -1,24 +1,30 @@
 """Trailing-window measures (``rolling:W``, ``rank:W``) of one layout, chunk by chunk.
 
-Pearson (``rolling``) keeps running window sums: each chunk of days is anchored on the
-full sums of its first day's window (one matrix product), then every following day adds
-the row that enters and subtracts the row that leaves. Re-anchoring on every chunk (at
-most :data:`~monitor.engine.windows.MAX_CHUNK_DAYS` days) bounds the rounding a running
-sum can gather, and the data are centred by each instrument's chunk mean before any sum is
-taken, so a large common offset in the returns costs no accuracy. However long the
-history, the last window agrees with a two-pass computation to about 1e-14.
+Pearson (``rolling``) keeps running window sums and re-anchors them:
 
-Within a chunk, the instruments with a return on every row any of the chunk's windows
-touches take the fast path (sums per instrument, one per-pair cross sum); pairs touching
-an instrument with a gap take the pairwise-complete masked sums of
-:mod:`monitor.engine.kernels`.
+* Days whose windows hold a return for every instrument of the tile (the fast path) keep
+  the centred cross products of the window, ``M = sum (x - m)(y - m)'``, exact from a
+  two-pass anchor. Each next day adds a rank-two update (the row that enters, the row
+  that leaves; :class:`_Side`), a chunk of updates being one batched product, and carries
+  ``M`` into the next chunk. A fresh anchor is taken when the squared deviations the
+  running sums have absorbed since the last anchor exceed :data:`REANCHOR_RATIO` times an
+  instrument's current sum of squared deviations, i.e. when rounding could start to show
+  (after a burst of large moves leaves the window, or every ~5 W days otherwise).
+* Days with a gap in some instrument's window: the fast path serves the pairs of complete
+  instruments, and the rows and columns of the others are overwritten with the
+  pairwise-complete masked sums of :mod:`monitor.engine.kernels` (anchored on each chunk's
+  first window, updated by entering and leaving rows), on data centred by each
+  instrument's chunk mean, so that a large common offset costs no accuracy.
+
+However long the history, values agree with a two-pass computation to about 1e-14. Zero
+variance is detected exactly (largest == smallest over the window), not from the sums.
 
 Spearman (``rank``) cannot be updated (ranks change with the window), so each window is
 ranked and correlated afresh (:mod:`monitor.engine.rank`).
 
-Cost per day, tile I x J: ``O(I * J)`` elementwise work for Pearson (plus one
-``O(W * I * J)`` product per chunk); ``O(W * I * J)`` for Spearman. Memory: one chunk of
-days times the pairs, never the history.
+Cost per day, tile I x J: ``O(I * J)`` elementwise work for Pearson (plus a
+``O(W * I * J)`` anchor now and then); ``O(W * I * J)`` for Spearman. Memory: one chunk
+of days times the pairs, never the history.
 """
 
 from __future__ import annotations
@@ -166,21 +172,32 @@ class _Side:
 def _anchor_days(
     sides: list[_Side], flats: list[BoolArray], start: list[FloatArray] | None
 ) -> tuple[BoolArray, list[FloatArray]]:
-    """Days (after the first) that need a fresh anchor, and what is absorbed at the end."""
+    """Days (after the first) that need a fresh anchor, and what is absorbed at the end.
+
+    Walks from one anchor to the next with cumulative sums, so the cost is per anchor,
+    not per day.
+    """
     days = sides[0].mean.shape[0]
-    absorbed = [np.zeros_like(s.sumsq[0]) for s in sides] if start is None else start
+    absorbed = [np.zeros_like(s.sumsq[0]) for s in sides] if start is None else list(start)
     anchor = np.zeros(days, dtype=bool)
-    for c in range(1, days):
-        absorbed = [
-            total + side.absorbed[c - 1] for total, side in zip(absorbed, sides, strict=True)
-        ]
-        # a constant instrument has no variance to compare with; its values are NaN anyway
-        if any(
-            np.any((total > REANCHOR_RATIO * side.sumsq[c]) & ~flat[c])
-            for total, side, flat in zip(absorbed, sides, flats, strict=True)
-        ):
-            anchor[c] = True
-            absorbed = [np.zeros_like(total) for total in absorbed]
+    c = 1
+    while c < days:
+        exceeded = np.zeros(days - c, dtype=bool)
+        totals = []
+        for base, side, flat in zip(absorbed, sides, flats, strict=True):
+            total = base + np.cumsum(side.absorbed[c - 1 : days - 1], axis=0)
+            # a constant instrument has no variance to compare with; its values are NaN
+            over = (total > REANCHOR_RATIO * side.sumsq[c:]) & ~flat[c:]
+            exceeded |= over.any(axis=1)
+            totals.append(total)
+        hits = np.flatnonzero(exceeded)
+        if hits.size == 0:
+            absorbed = [total[-1] for total in totals]
+            break
+        c += int(hits[0])
+        anchor[c] = True
+        absorbed = [np.zeros_like(base) for base in absorbed]
+        c += 1
     return anchor, absorbed
 
 
@@ -239,7 +256,7 @@ def _complete_days(
     # the count is W for every pair and day; most days have no flat instrument
     count = constant(float(window), sub.shape)
     no_stale = constant(False, sub.shape, np.bool_)
-    any_flat = flat_left.any(axis=1) | flat_right.any(axis=1)
+    any_flat: BoolArray = np.asarray(flat_left.any(axis=1) | flat_right.any(axis=1))
     if continuing and carry.comoment is not None:
         comoment = carry.comoment
     else:
