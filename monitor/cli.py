@@ -472,6 +472,8 @@ BENCHES = {
     "ingest": "monitor.bench_ingest",
     "engine": "monitor.bench_engine",
     "digest": "monitor.bench_digest",
+    "backfill": "monitor.bench_backfill",
+    "pages": "monitor.bench_pages",
 }
 
 

@@ -58,6 +58,14 @@ class Plan:
     level: float
 
     @property
+    def use_matrix(self) -> bool:
+        """Compute full (N, N) matrices rather than a pair list: the engine's matrix path
+        works in blocks with matrix products and wins as soon as the rules watch a good
+        share of all pairs (a tenth, here)."""
+        n = len(self.symbols)
+        return len(self.pairs) * 10 >= n * (n - 1) // 2
+
+    @property
     def max_lag(self) -> int:
         return max((lag for _, lag in self.lags), default=0)
 
@@ -139,15 +147,17 @@ def replay(
     """
     stop_t = returns.shape[0] if stop_t is None else stop_t
     warm_t = max(0, from_t - plan.max_lag)
+    matrix = plan.use_matrix
     streams = {
-        text: stream(returns, text, pairs=plan.pairs, start=warm_t, stop=stop_t,
-                     level=plan.level)
+        text: stream(returns, text, pairs=None if matrix else plan.pairs, start=warm_t,
+                     stop=stop_t, level=plan.level)
         for text in plan.measures
     }
     history: dict[str, deque[Any]] = {
         text: deque(maxlen=plan.max_lag + 1) for text in plan.measures
     }
-    size = len(plan.pairs)
+    n = returns.shape[1]
+    shape: int | tuple[int, int] = (n, n) if matrix else len(plan.pairs)
     for t in range(warm_t, stop_t):
         today: dict[str, Any] = {}
         for text, days in streams.items():
@@ -161,10 +171,10 @@ def replay(
         lagged = {}
         for text, lag in plan.lags:
             past = history[text]
-            lagged[(text, lag)] = past[-1 - lag] if len(past) > lag else MeasureDay.missing(size)
+            lagged[(text, lag)] = past[-1 - lag] if len(past) > lag else MeasureDay.missing(shape)
         date = dates[t]
         inputs = DayInputs(
-            date=date, measures=today, layout=plan.layout, lagged=lagged,
+            date=date, measures=today, layout=None if matrix else plan.layout, lagged=lagged,
             days_without_close=None if days_without_close is None else days_without_close[t],
             days_unchanged=None if days_unchanged is None else days_unchanged[t],
         )

@@ -29,6 +29,14 @@ def finish_run(conn: Connection, run_id: int, *, status: str, now: dt.datetime,
         error=error[:4000]))
 
 
+def close_unfinished(conn: Connection, *, now: dt.datetime) -> int:
+    """Mark runs still 'running' as interrupted (call only while holding the lease)."""
+    result = conn.execute(runs.update().where(runs.c.status == "running").values(
+        status="interrupted", finished_at=now,
+        error="the process ended before the run finished"))
+    return int(result.rowcount or 0)
+
+
 @dataclass(frozen=True)
 class RunRow:
     id: int
