@@ -142,3 +142,19 @@ def test_ewma_uniform_block_with_general_overrides_matches_the_reference(
     assert same(value, ref_value)
     late = cube(list(stream(returns, spec, start=70)))
     assert same(late, value[70:])
+
+
+@pytest.mark.parametrize("spec", SPECS)
+def test_degenerate_inputs_give_shaped_results(spec: str) -> None:
+    rng = np.random.default_rng(12)
+    returns = rng.standard_normal((40, 4)) * 0.01
+    returns[:, 3] = np.nan  # an instrument with no return at all
+    assert list(stream(returns, spec, start=5, stop=5)) == []
+    day = one_day(returns, spec)
+    assert np.isnan(day.value[3]).all() and np.isnan(day.value[:, 3]).all()
+    assert not day.stale[3].any() and (day.n[3] == 0).all()
+    assert one_day(returns[:, :1], spec).value.shape == (1, 1)
+    empty = next(stream(returns, spec, pairs=np.zeros((0, 2), dtype=int)))
+    assert empty.value.shape == empty.n.shape == empty.stale.shape == (0,)
+    first = one_day(returns, spec, 0)
+    assert np.isnan(first.value).all()

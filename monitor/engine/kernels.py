@@ -9,12 +9,15 @@ window uses ``(+1, -1)`` on the row that enters and the row that leaves.
   (NaN -> 0) and ``M`` the validity mask: ``S0 = (wM)'M``, ``Sx = (wY)'M``,
   ``Sxx = (wY*Y)'M``, ``Sxy = (wY)'Y`` (and ``(w^2 M)'M`` for the Kish count), each pair
   over its common days only.
-* :func:`uniform_sums` — every instrument of the stack has a return on every row (the
-  fast path): ``S0`` is one number per day, ``Sx`` and ``Sxx`` are per instrument, only
-  ``Sxy`` is per pair.
+* :func:`uniform_sums` — every instrument of the stack has a return on every row:
+  ``S0`` is one number per day, ``Sx`` and ``Sxx`` are per instrument, only ``Sxy`` is
+  per pair (the EWMA warm-up of a block sharing one history).
 * :func:`moments` turns sums into means, variances and covariance; :func:`finish` turns
-  moments into values, (effective) counts and stale flags.
+  moments into values, (effective) counts and stale flags; :func:`outputs` applies the
+  minimum count, the stale rule and the clip to values computed elsewhere.
 * :func:`uniform_correlation` — two-pass Pearson of NaN-free stacks (used on ranks).
+
+The rolling fast path keeps centred cross products instead (:mod:`monitor.engine.rolling`).
 
 Stale: a variance is zero when it is at most :data:`STALE_RATIO` times the raw second
 moment about the shift. Rounding leaves about ``rows * 1e-16`` of the raw moment, while a
@@ -417,36 +420,3 @@ def finish(
     if value.shape != shape:
         value = np.broadcast_to(value, shape).copy()
     return outputs(value, n, flat_left, flat_right, shape, min_count)
-
-
-def finish_uniform(
-    sums: Sums,
-    shape: tuple[int, ...],
-    *,
-    min_count: float,
-    flat: tuple[BoolArray, BoolArray] | None = None,
-) -> tuple[FloatArray, FloatArray, BoolArray]:
-    """:func:`finish` of equal-weight :func:`uniform_sums`, in fewer passes over the pairs.
-
-    ``r = (Sxy / n - mx my) / (sx sy)`` is formed as ``Sxy * (1 / (n sx)) * (1 / sy)
-    - (mx / sx)(my / sy)``: the per-instrument factors are folded in before touching the
-    (I, J) array, which is then read and written four times.
-    """
-    inv = 1.0 / sums.weight
-    mean_left = sums.left * inv
-    mean_right = sums.right * inv
-    var_left = np.maximum(sums.left_sq * inv - mean_left * mean_left, 0.0)
-    var_right = np.maximum(sums.right_sq * inv - mean_right * mean_right, 0.0)
-    flat_left = var_left <= STALE_RATIO * (var_left + mean_left * mean_left)
-    flat_right = var_right <= STALE_RATIO * (var_right + mean_right * mean_right)
-    if flat is not None:
-        flat_left = flat_left | flat[0]
-        flat_right = flat_right | flat[1]
-    scale_left = np.where(flat_left, 0.0, 1.0 / np.sqrt(np.where(flat_left, 1.0, var_left)))
-    scale_right = np.where(flat_right, 0.0, 1.0 / np.sqrt(np.where(flat_right, 1.0, var_right)))
-    value = np.multiply(sums.cross, inv * scale_left)
-    value *= scale_right
-    value -= (mean_left * scale_left) * (mean_right * scale_right)
-    if value.shape != shape:
-        value = np.broadcast_to(value, shape).copy()
-    return outputs(value, np.array(sums.weight), flat_left, flat_right, shape, min_count)

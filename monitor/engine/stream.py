@@ -118,9 +118,19 @@ def _arrays(
     stop: int,
     chunk: int | None,
 ) -> Iterator[tuple[FloatArray, FloatArray, BoolArray]]:
+    if 0 in layout.shape:
+        return _empty_days(layout.shape, stop - start)
     if measure.kind == "ewma":
         return ewma_tile(returns, measure, layout, start, stop)
     return window_tile(returns, measure, layout, start, stop, chunk)
+
+
+def _empty_days(
+    shape: tuple[int, ...], days: int
+) -> Iterator[tuple[FloatArray, FloatArray, BoolArray]]:
+    """Days of a layout without pairs (an empty pair list or tile)."""
+    for _ in range(days):
+        yield np.empty(shape), np.empty(shape), np.empty(shape, dtype=bool)
 
 
 def _results(

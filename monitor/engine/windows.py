@@ -105,11 +105,6 @@ def window_stack(returns: Returns2D, columns: IntArray, a: int, b: int, window: 
     return np.array(sliding_window_view(block, window, axis=0), order="C")
 
 
-def block_rows(returns: Returns2D, columns: IntArray, a: int, b: int, window: int) -> Returns2D:
-    """The rows ``max(0, a - W + 1) .. b - 1`` of the given columns (all rows any window uses)."""
-    return returns[max(0, a - window + 1) : b][:, columns]
-
-
 def delta_stack(returns: Returns2D, columns: IntArray, a: int, b: int, window: int) -> FloatArray:
     """The row entering and the row leaving the window, for days ``a + 1 .. b - 1``.
 
