@@ -66,6 +66,12 @@ def _date(text: str) -> dt.date:
         raise argparse.ArgumentTypeError(f"{text!r} is not a date (YYYY-MM-DD)") from None
 
 
+def add_format_option(parser: argparse.ArgumentParser) -> None:
+    """The output format option shared by every listing command."""
+    parser.add_argument("--format", choices=("table", "csv", "json"), default="table",
+                        help="table for reading (default), csv or json for other tools")
+
+
 def load(args: argparse.Namespace) -> Any:
     from monitor.config import load_settings
 
@@ -103,7 +109,8 @@ def _init(args: argparse.Namespace) -> int:
 
 
 def _ingest_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("files", nargs="+", type=Path, metavar="FILE")
+    parser.add_argument("files", nargs="+", type=Path, metavar="FILE",
+                        help="closes files (.csv or .csv.gz); each is ingested on its own")
     parser.add_argument("--format", choices=("auto", "long", "wide"), default="auto",
                         help="layout: long = date,symbol,close[,source]; wide = date plus one "
                              "column per symbol; auto decides from the header (default)")
@@ -161,7 +168,7 @@ def _print_ingest(report: Any) -> None:
 
 
 def _instruments_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--format", choices=("table", "csv", "json"), default="table")
+    add_format_option(parser)
 
 
 @command("instruments", "List instruments with first and last date, closes and gaps.",
@@ -247,7 +254,7 @@ def _alerts_args(parser: argparse.ArgumentParser) -> None:
                         help="alerts opened, cleared or still open on or after DATE")
     parser.add_argument("--pair", metavar="A/B", help="alerts of one pair")
     parser.add_argument("--rule", metavar="NAME", help="alerts of one rule")
-    parser.add_argument("--format", choices=("table", "csv", "json"), default="table")
+    add_format_option(parser)
 
 
 @command("alerts", "List alerts with state, severity, rule, pair, dates, values and who "
@@ -311,9 +318,10 @@ def _series_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("b", metavar="B", help="second instrument")
     parser.add_argument("--measure", required=True, metavar="SPEC",
                         help="e.g. rolling:63, ewma:hl=21, ewma:lambda=0.94,mean=zero, rank:63")
-    parser.add_argument("--start", type=_date, metavar="DATE")
-    parser.add_argument("--end", type=_date, metavar="DATE")
-    parser.add_argument("--format", choices=("table", "csv", "json"), default="table")
+    parser.add_argument("--start", type=_date, metavar="DATE", help="first date printed")
+    parser.add_argument("--end", type=_date, metavar="DATE",
+                        help="last date printed (later closes are not read)")
+    add_format_option(parser)
 
 
 @command("series", "Print one pair's measure from the store: date, value, band low, band "

@@ -90,13 +90,7 @@ def write_events(conn: Connection, events: Iterable[EventRow]) -> set[int]:
             for e in fresh.values()
         ])
         ids.update(_alert_ids(conn, set(fresh)))
-    conn.execute(alert_events.insert(), [
-        {"alert_id": ids[(e.rule, e.target, e.opened_on)], "rule": e.rule, "date": e.date,
-         "event": e.event, "value": _num(e.value), "level": _num(e.level), "low": _num(e.low),
-         "high": _num(e.high), "n": _num(e.n), "z": _num(e.z), "p": _num(e.p),
-         "reference": _num(e.reference), "days_held": e.days_held, "announce": e.announce}
-        for e in rows
-    ])
+    _insert_events(conn, ids, rows)
     latest: dict[int, EventRow] = {}
     for e in rows:
         alert_id = ids[(e.rule, e.target, e.opened_on)]
@@ -110,6 +104,32 @@ def write_events(conn: Connection, events: Iterable[EventRow]) -> set[int]:
           "b_last": _num(e.value), "b_last_on": e.date} for alert_id, e in latest.items()],
     )
     return set(latest)
+
+
+_EVENT_COLUMNS = ("alert_id", "rule", "date", "event", "value", "level", "low", "high", "n",
+                  "z", "p", "reference", "days_held", "announce")
+
+
+def _insert_events(conn: Connection, ids: dict[tuple[str, str, dt.date], int],
+                   rows: Sequence[EventRow]) -> None:
+    values = [
+        (ids[(e.rule, e.target, e.opened_on)], e.rule, e.date, e.event, _num(e.value),
+         _num(e.level), _num(e.low), _num(e.high), _num(e.n), _num(e.z), _num(e.p),
+         _num(e.reference), e.days_held, e.announce)
+        for e in rows
+    ]
+    if conn.dialect.name == "sqlite":
+        # Straight to the driver, in the text and integer forms SQLAlchemy's Date and
+        # Boolean types store on SQLite: a busy backfill writes hundreds of thousands of
+        # events and the per-row parameter processing would cost more than the insert.
+        marks = ", ".join("?" * len(_EVENT_COLUMNS))
+        conn.exec_driver_sql(
+            f"INSERT INTO alert_events ({', '.join(_EVENT_COLUMNS)}) VALUES ({marks})",
+            [(*v[:2], v[2].isoformat(), *v[3:13], int(v[13])) for v in values],
+        )
+        return
+    conn.execute(alert_events.insert(), [dict(zip(_EVENT_COLUMNS, v, strict=True))
+                                         for v in values])
 
 
 def _alert_ids(conn: Connection, keys: set[tuple[str, str, dt.date]]

@@ -67,7 +67,43 @@ def _made_up_site(folder: Path) -> BuiltSite:
     return BuiltSite(folder, "KLV/DUNQ", matching)
 
 
-SITE_BUILDERS: dict[str, Callable[[Path], BuiltSite]] = {"made-up": _made_up_site}
+def _backfill_site(folder: Path) -> BuiltSite:
+    """The site the pipeline builds after a backfill of the planted-break desk."""
+    import datetime as dt
+
+    from monitor.config import load_settings
+    from monitor.pipeline import build_pages, evaluate_range, ingest_file, init_store
+    from monitor.synthetic import generate
+    from storage import alerts as alerts_store
+    from tests.scenarios import INSTRUMENTS, RULES, break_scenario
+
+    desk = folder.parent / f"{folder.name}-desk"
+    desk.mkdir()
+    closes = generate(break_scenario()).closes
+    closes.index.name = "date"
+    closes.to_csv(desk / "closes.csv", date_format="%Y-%m-%d")
+    # A second watched pair, so that filtering on KLV/DUNQ has rows to hide.
+    bond_watch = ('\n[[rules]]\nname = "bond-watch"\nkind = "level"\nmeasure = "rolling:21"'
+                  '\npairs = ["KLV/TEZ10"]\nabove = -0.5\nclear = -0.6\n')
+    (desk / "comove.toml").write_text('[store]\nurl = "sqlite:///store.sqlite"\n'
+                                      + INSTRUMENTS + RULES + bond_watch)
+    settings = load_settings(desk / "comove.toml")
+    store = init_store(settings)
+    ingest_file(store, settings, desk / "closes.csv", today=dt.date(2024, 1, 5))
+    evaluate_range(store, settings, None, None)
+    build_pages(store, settings, folder)
+    with store.connect() as conn:
+        matching = frozenset(str(a.id) for a in alerts_store.list_alerts(conn)
+                             if a.target == "KLV/DUNQ")
+    store.dispose()
+    assert matching, "the planted break must have raised alerts"
+    return BuiltSite(folder, "KLV/DUNQ", matching)
+
+
+SITE_BUILDERS: dict[str, Callable[[Path], BuiltSite]] = {
+    "made-up": _made_up_site,
+    "synthetic-backfill": _backfill_site,
+}
 """Ways to build the site under test, by name; each test runs once per builder."""
 
 
