@@ -15,7 +15,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from monitor.config import Settings, load_settings
+from monitor.config import Settings
 from monitor.pipeline import ingest_file, init_store, run_daily, run_days
 from monitor.synthetic import generate
 from storage import Store
