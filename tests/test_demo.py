@@ -7,7 +7,6 @@ import datetime as dt
 import os
 import re
 import subprocess
-import sys
 from pathlib import Path
 from urllib.parse import unquote, urlparse
 
