@@ -82,7 +82,8 @@ def render(readme: str) -> str:
             rf"(<!-- reference:{name} -->\n).*?(<!-- /reference:{name} -->)", re.S)
         if not pattern.search(readme):
             raise SystemExit(f"README has no <!-- reference:{name} --> section")
-        readme = pattern.sub(lambda m, make=make: m.group(1) + make() + m.group(2), readme)
+        body = make()
+        readme = pattern.sub(lambda m: m.group(1) + body + m.group(2), readme)
     return readme
 
 
