@@ -8,10 +8,13 @@ Ties get the average of the ranks they span, as in the usual definition of Spear
   window, vectorised over the chunk's days; the pairs of such instruments are one matrix
   product of standardised ranks. Cost per day: ``O(K W log W)`` to rank plus
   ``O(W I J)`` for the product.
-* Pairs with a gap in the window: the ranks depend on the pair's common days, so each
-  such pair is ranked on its own rows, vectorised over all those pairs and days at once
-  (missing rows sort last and get no rank). Cost per day: ``O(P' W log W)`` for the
-  ``P'`` pairs that touch an instrument with a gap.
+* Pairs with a gap in the window: the ranks depend on the pair's common days. Each
+  instrument is ranked once over its own days; a pair whose common days drop only a few
+  of them (:data:`REMOVED_CAP`, the usual case of scattered missing days) corrects those
+  ranks for the dropped rows, without sorting again; other pairs are ranked afresh on
+  their common rows. Vectorised over all such pairs and days. Cost per day:
+  ``O(P' W)`` for the ``P'`` pairs that touch an instrument with a gap (``O(P' W log W)``
+  for those ranked afresh).
 
 Ranks are small integers or halves, exact in floating point: a window of ties has a rank
 variance of exactly zero and is flagged stale.
@@ -63,30 +66,44 @@ def average_ranks(values: FloatArray, axis: int = -1) -> FloatArray:
     return np.moveaxis(out, -1, axis)
 
 
-def _pairwise_spearman(
-    left: FloatArray, right: FloatArray
-) -> tuple[FloatArray, FloatArray, BoolArray]:
-    """Spearman of column-paired stacks (days, P, W) over each pair's common rows.
+REMOVED_CAP = 4
+"""Pairs whose common days drop at most this many of an instrument's own days in the window
+get their ranks by correcting the instrument's own ranks; others are ranked afresh."""
 
-    Returns ``(value, count, flat)`` shaped (days, P); ``value`` is NaN where fewer than two
-    common rows or a side is constant (``flat``).
-    """
-    common = ~(np.isnan(left) | np.isnan(right))
-    count = common.sum(axis=2).astype(np.float64)
-    rank_left = average_ranks(np.where(common, left, np.nan))
-    rank_right = average_ranks(np.where(common, right, np.nan))
+
+def _spearman_of_ranks(
+    rank_left: FloatArray, rank_right: FloatArray, common: BoolArray
+) -> tuple[FloatArray, FloatArray, BoolArray]:
+    """Pearson of ranks 1..n over each row's common entries: (B, W) -> (B,) value, n, flat."""
+    count = common.sum(axis=1).astype(np.float64)
     # ranks 1..n over n common rows have mean (n + 1) / 2 exactly
-    centre = ((count + 1.0) / 2.0)[:, :, None]
+    centre = ((count + 1.0) / 2.0)[:, None]
     dev_left = np.where(common, rank_left - centre, 0.0)
     dev_right = np.where(common, rank_right - centre, 0.0)
-    ss_left = np.einsum("cpw,cpw->cp", dev_left, dev_left)
-    ss_right = np.einsum("cpw,cpw->cp", dev_right, dev_right)
+    ss_left = np.einsum("bw,bw->b", dev_left, dev_left)
+    ss_right = np.einsum("bw,bw->b", dev_right, dev_right)
     flat = (ss_left <= 0.0) | (ss_right <= 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        value = np.einsum("cpw,cpw->cp", dev_left, dev_right) / np.sqrt(ss_left * ss_right)
+        value = np.einsum("bw,bw->b", dev_left, dev_right) / np.sqrt(ss_left * ss_right)
     value[flat] = np.nan
     np.clip(value, -1.0, 1.0, out=value)
     return value, count, flat
+
+
+def _restricted_ranks(values: FloatArray, own: FloatArray, removed: BoolArray) -> FloatArray:
+    """Average ranks after dropping the ``removed`` rows (at most REMOVED_CAP per row).
+
+    The average rank of v is ``#{< v} + (#{== v} + 1) / 2``; dropping rows d lowers it by
+    ``#{d: x_d < v} + #{d: x_d == v} / 2``, so no new sort is needed.
+    """
+    order = np.argsort(~removed, axis=1, kind="stable")[:, :REMOVED_CAP]
+    taken = np.take_along_axis(removed, order, axis=1)
+    dropped = np.take_along_axis(values, order, axis=1)[:, :, None]  # (B, cap, 1)
+    current = values[:, None, :]
+    with np.errstate(invalid="ignore"):
+        below = (dropped < current) + 0.5 * (dropped == current)
+    correction = np.einsum("bk,bkw->bw", taken.astype(np.float64), below)
+    return own - correction
 
 
 def rank_block(
@@ -134,14 +151,39 @@ def rank_block(
     count = layout.cross(valid_left, valid_right).reshape(days, -1)
     value = np.full(count.shape, np.nan)
     stale = np.zeros(count.shape, dtype=bool)
+    # each instrument's ranks over its own days in each window, once
+    own_left = average_ranks(left)
+    own_right = own_left if right is None else average_ranks(right_stack)
     # rank only the (day, pair) cells that can have a value, a bounded batch at a time
     day_idx, pair_idx = np.nonzero(count >= min_count)
-    batch = max(1, PAIR_BATCH_BYTES // (8 * 10 * window))
+    batch = max(1, PAIR_BATCH_BYTES // (8 * (4 + 2 * REMOVED_CAP) * window))
     for lo in range(0, day_idx.size, batch):
         days_k, pairs_k = day_idx[lo : lo + batch], pair_idx[lo : lo + batch]
-        part_value, _, part_flat = _pairwise_spearman(
-            left[days_k, left_pos[pairs_k]][None], right_stack[days_k, right_pos[pairs_k]][None]
-        )
-        value[days_k, pairs_k] = part_value[0]
-        stale[days_k, pairs_k] = part_flat[0]
+        x_left = left[days_k, left_pos[pairs_k]]
+        x_right = right_stack[days_k, right_pos[pairs_k]]
+        valid_l, valid_r = ~np.isnan(x_left), ~np.isnan(x_right)
+        drop_left, drop_right = valid_l & ~valid_r, valid_r & ~valid_l
+        few = (drop_left.sum(axis=1) <= REMOVED_CAP) & (drop_right.sum(axis=1) <= REMOVED_CAP)
+        part_value = np.empty(days_k.size)
+        part_flat = np.empty(days_k.size, dtype=bool)
+        if few.any():
+            ranks_l = _restricted_ranks(
+                x_left[few], own_left[days_k[few], left_pos[pairs_k[few]]], drop_left[few]
+            )
+            ranks_r = _restricted_ranks(
+                x_right[few], own_right[days_k[few], right_pos[pairs_k[few]]], drop_right[few]
+            )
+            part_value[few], _, part_flat[few] = _spearman_of_ranks(
+                ranks_l, ranks_r, valid_l[few] & valid_r[few]
+            )
+        many = ~few
+        if many.any():
+            common = valid_l[many] & valid_r[many]
+            part_value[many], _, part_flat[many] = _spearman_of_ranks(
+                average_ranks(np.where(common, x_left[many], np.nan)),
+                average_ranks(np.where(common, x_right[many], np.nan)),
+                common,
+            )
+        value[days_k, pairs_k] = part_value
+        stale[days_k, pairs_k] = part_flat
     return value.reshape(shape), count.reshape(shape), stale.reshape(shape)
