@@ -30,6 +30,20 @@ module) does not run the recursion from row 0: it starts from the closed form at
 earliest last return of the block's instruments), where the omitted weights sum to less
 than :data:`TAIL_WEIGHT` of one day's weight. That is far below rounding; the tests check
 that such a stream equals a full pass to 1e-12.
+
+Minimum and stale. ``min=M`` applies to the Kish effective count
+``n_eff = (sum w)^2 / sum w^2`` over the pair's common days (the ``n`` reported): below it
+the value is NaN. A side is stale when its weighted variance is zero up to rounding, i.e.
+all its common returns so far are equal; a constant stretch after moves lowers the
+variance geometrically but keeps a value (as pandas does), so a stale close inside a long
+history is for the rolling measures and the data checks to catch. A pair with no common
+return on a day keeps its value and ``n_eff`` (the weights age alike).
+
+Blocks. The instruments whose validity over all rows is the most common pattern share one
+history of weights: their block runs the recursion with per-instrument means and
+variances and one rank-one update of the (I, J) covariance per day
+(:func:`_uniform_days`). Pairs touching any other instrument run the general per-pair
+recursion (:func:`_days`) and overwrite the block's rows and columns.
 """
 
 from __future__ import annotations

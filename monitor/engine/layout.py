@@ -1,10 +1,12 @@
 """Which pairs a computation covers: a tile (block of instruments I x J) or a pair list.
 
-A layout owns the shape of the output and the two operations every kernel needs:
-``cross`` (sum over the window axis of left x right products, for every covered pair) and
-``left`` / ``right`` (lift a per-instrument vector so that it broadcasts against the output).
-Kernels are written once against these and serve both a tile and a pair list; a tile is
-the unit a distributed engine can later hand out.
+A layout owns the shape of the output and the operations every kernel needs: ``cross``
+(sum over the window axis of left x right products, for every covered pair; ``cross_many``
+for several left factors at once), ``left`` / ``right`` (lift a per-instrument vector so
+that it broadcasts against the output) and ``split`` (which pairs the fast path may serve,
+and which rows, columns or pairs the general path must overwrite). Kernels are written
+once against these and serve both a tile and a pair list; a tile is the unit a
+distributed engine can later hand out.
 """
 
 from __future__ import annotations
