@@ -9,6 +9,7 @@ renamed or re-described without the README following).
 from __future__ import annotations
 
 import argparse
+import functools
 import re
 from pathlib import Path
 
@@ -75,6 +76,10 @@ SECTIONS = {
 }
 
 
+def _fill(match: re.Match[str], body: str) -> str:
+    return match.group(1) + body + match.group(2)
+
+
 def render(readme: str) -> str:
     """The README with every reference section regenerated."""
     for name, make in SECTIONS.items():
@@ -82,8 +87,7 @@ def render(readme: str) -> str:
             rf"(<!-- reference:{name} -->\n).*?(<!-- /reference:{name} -->)", re.S)
         if not pattern.search(readme):
             raise SystemExit(f"README has no <!-- reference:{name} --> section")
-        body = make()
-        readme = pattern.sub(lambda m: m.group(1) + body + m.group(2), readme)
+        readme = pattern.sub(functools.partial(_fill, body=make()), readme)
     return readme
 
 
