@@ -187,6 +187,9 @@ class AlertView:
         The measure's recent history for the chart; None draws no chart.
     observations : float or None
         Observation count n (or effective count for EWMA) behind `value`.
+    reminder : bool
+        True on the alert's reminder days (every `remind_every` business days while it is
+        open and unacknowledged); shown as "reminder", the other days as plain "open".
     """
 
     id: int | str
@@ -216,6 +219,7 @@ class AlertView:
     drivers: Sequence[DriverView] = ()
     history: AlertHistory | None = None
     observations: float | None = None
+    reminder: bool = False
 
     def __post_init__(self) -> None:
         if self.severity not in SEVERITY_RANK:

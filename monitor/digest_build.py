@@ -245,6 +245,7 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
         acknowledgement_note=facts.acknowledged_note, cleared_on=facts.cleared_on,
         drivers=tuple(driver_views), history=history if bucket == "new" else None,
         observations=_finite_or_none(n),
+        reminder=facts.reminded_today,
     )
 
 

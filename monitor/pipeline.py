@@ -653,7 +653,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
     day = returns.index[-1].date()
     names = {i.symbol: i.name for i in settings.instruments}
     with store.connect() as conn:
-        rows = alerts_store.list_alerts(conn, since=day)
+        rows = alerts_store.list_alerts(conn, open_on=day)
         today_events = alerts_store.events_for(conn, date=day)
     by_alert: dict[int, dict[str, Any]] = {}
     for event in today_events:
@@ -661,11 +661,15 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
     facts = [
         AlertFacts(
             id=a.id, rule=a.rule, target=a.target, opened_on=a.opened_on,
-            first_breach_on=a.first_breach_on, state=a.state, cleared_on=a.cleared_on,
+            first_breach_on=a.first_breach_on,
+            # As the evening of `day` saw it, whatever happened to the alert later.
+            state="cleared" if a.cleared_on == day else "open",
+            cleared_on=a.cleared_on if a.cleared_on == day else None,
             severity=a.severity, rule_kind=a.rule_kind,
             announced=bool(by_alert.get(a.id, {}).get("announce", a.announced)),
-            acknowledged_by=a.acknowledged_by, acknowledged_at=a.acknowledged_at,
-            acknowledged_note=a.acknowledged_note,
+            acknowledged_by=_acked_by(a, day), acknowledged_at=a.acknowledged_at
+            if _acked_by(a, day) else None,
+            acknowledged_note=a.acknowledged_note if _acked_by(a, day) else None,
             reminded_today=by_alert.get(a.id, {}).get("event") == "continuing",
             event_today=by_alert.get(a.id),
         )
@@ -683,6 +687,14 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
         data_through=panel.index[-1].date(),
     )
     return build_context(inputs)
+
+
+def _acked_by(alert: alerts_store.AlertRow, day: dt.date) -> str | None:
+    """Who had acknowledged the alert by the end of `day` (None: nobody yet)."""
+    at = alert.acknowledged_at
+    if at is None:
+        return None
+    return alert.acknowledged_by if at.date() <= day else None
 
 
 def digest_folder(settings: Settings, as_of: dt.date) -> Path:

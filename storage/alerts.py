@@ -242,9 +242,17 @@ def list_alerts(
     target: str | None = None,
     rule: str | None = None,
     ids: Sequence[int] | None = None,
+    open_on: dt.date | None = None,
 ) -> list[AlertRow]:
-    """Alerts with their latest acknowledgement, newest first."""
+    """Alerts with their latest acknowledgement, newest first.
+
+    `open_on` keeps the alerts that were open on that day or cleared on it (what an
+    evening's digest of that day shows), whatever happened to them later.
+    """
     query = select(alerts)
+    if open_on is not None:
+        query = query.where(alerts.c.opened_on <= open_on, alerts.c.state != "withdrawn",
+                            or_(alerts.c.cleared_on.is_(None), alerts.c.cleared_on >= open_on))
     if open_only:
         query = query.where(alerts.c.state == "open")
     if since is not None:

@@ -132,3 +132,27 @@ def test_a_password_in_the_settings_file_is_refused(
 
     with pytest.raises(ConfigError, match="digest.password: a password in the settings file"):
         write_settings(store_url, INSTRUMENTS + '\n[digest]\npassword = "hunter2"\n')
+
+
+def test_still_open_alerts_are_marked_as_reminders_only_on_their_reminder_days(
+    desk: tuple[Store, Settings], tmp_path: Path
+) -> None:
+    store, settings = desk
+    alert = _break_alert(store)
+    with store.connect() as conn:
+        events = alerts_store.events_for(conn, [alert.id])
+    reminder_day = next(e["date"] for e in events if e["event"] == "continuing")
+    quiet_day = reminder_day - dt.timedelta(days=1)
+    assert quiet_day > alert.opened_on and quiet_day.weekday() < 5
+    for day, expected in ((reminder_day, True), (quiet_day, False)):
+        outcome = render_digest_files(store, settings, day, out_dir=tmp_path / str(day))
+        soup = BeautifulSoup(outcome.paths.html.read_text(encoding="utf-8"), "html.parser")
+        rows = [tr for tr in soup.find_all("tr")
+                if "hedge-break" in tr.get_text() and tr.find("div", class_="reminder")
+                and not tr.find("table")]
+        assert len(rows) == 1
+        mark = rows[0].find("div", class_="reminder").get_text(strip=True)
+        assert mark == ("reminder: not acknowledged" if expected else "not acknowledged")
+        line = next(x for x in outcome.paths.text.read_text().splitlines()
+                    if "hedge-break" in x and "not acknowledged" in x)
+        assert ("reminder: not acknowledged" in line) is expected
