@@ -67,7 +67,10 @@ def norris() -> tuple[FloatArray, FloatArray]:
     return np.array(columns["x"], dtype=float), np.array(columns["y"], dtype=float)
 
 
-def _pair_days(returns: FloatArray, i: int, j: int, lo: int, hi: int) -> tuple[FloatArray, ...]:
+def _pair_days(
+    returns: FloatArray, i: int, j: int, lo: int, hi: int
+) -> tuple[FloatArray, FloatArray, npt.NDArray[np.intp]]:
+    """The pair's common rows in ``lo .. hi-1``: x, y and the row numbers."""
     x = returns[lo:hi, i]
     y = returns[lo:hi, j]
     keep = ~(np.isnan(x) | np.isnan(y))
