@@ -177,7 +177,8 @@ for day in stream(returns, "rolling:63"):
 seconds = time.perf_counter() - start
 current, peak = tracemalloc.get_traced_memory()
 tracemalloc.stop()
-rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+ru_maxrss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+rss = ru_maxrss
 try:
     # VmHWM is this process's own peak; ru_maxrss can carry the parent's over fork + exec
     with open("/proc/self/status") as status:
@@ -187,7 +188,7 @@ try:
 except OSError:
     pass
 print(json.dumps({"days": days, "seconds": seconds, "traced_peak_bytes": peak,
-                  "max_rss_bytes": rss}))
+                  "max_rss_bytes": rss, "ru_maxrss_bytes": ru_maxrss}))
 """
 
 
