@@ -65,6 +65,18 @@ def _closes(n_instruments: int, n_days: int, seed: int) -> pd.DataFrame:
                         columns=[f"SYN{i:04d}" for i in range(n_instruments)])
 
 
+def _peak_resident_kb() -> int:
+    """This process's own peak resident memory (VmHWM); ru_maxrss can carry a parent's
+    high-water mark over into a child on Linux."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1])
+    except OSError:
+        pass
+    return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+
+
 def _child(folder: Path, n_instruments: int, n_days: int) -> dict[str, object]:
     from monitor.config import load_settings
     from monitor.pipeline import evaluate_range, ingest_file, init_store
@@ -84,7 +96,7 @@ def _child(folder: Path, n_instruments: int, n_days: int) -> dict[str, object]:
                             commit_days=250)
     evaluated = time.perf_counter()
     store.dispose()
-    peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    peak_kb = _peak_resident_kb()
     return {
         "instruments": n_instruments, "days": n_days,
         "pairs": n_instruments * (n_instruments - 1) // 2, "rules": 3,

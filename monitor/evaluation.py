@@ -15,6 +15,7 @@ full pass (its warm-up reaches back as needed), resuming from a saved alert book
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import hashlib
 import json
 from collections import deque
@@ -28,6 +29,7 @@ import pandas as pd
 
 from monitor.alerts import AlertBook, AlertEvent
 from monitor.engine import stream
+from monitor.engine.bands import fisher_band
 from monitor.rules import DayInputs, MeasureDay, PairLayout, Rule
 from monitor.rules.registry import lags_needed, measures_needed, pairs_needed
 
@@ -114,6 +116,47 @@ def stale_inputs(closes: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     return rows - last_close, rows - last_change
 
 
+class PairDay:
+    """One day of one measure for the plan's pairs, read from the engine's (N, N) matrices.
+
+    The engine's matrix path is the fast one for many pairs, but the rules want per-pair
+    arrays: gathering them here once per measure and day (on first use) spares every rule
+    its own gather, and the Fisher band is computed for the pairs only.
+    """
+
+    def __init__(self, result: Any, flat: npt.NDArray[np.int64], level: float) -> None:
+        self._result = result
+        self._flat = flat
+        self._level = level
+
+    def _pick(self, array: np.ndarray) -> np.ndarray:
+        return np.take(np.ravel(array), self._flat)
+
+    @functools.cached_property
+    def value(self) -> np.ndarray:
+        return self._pick(self._result.value)
+
+    @functools.cached_property
+    def n(self) -> np.ndarray:
+        return self._pick(self._result.n)
+
+    @functools.cached_property
+    def stale(self) -> np.ndarray:
+        return self._pick(self._result.stale)
+
+    @functools.cached_property
+    def band(self) -> tuple[np.ndarray, np.ndarray]:
+        return fisher_band(self.value, self.n, self._level)
+
+    @property
+    def low(self) -> np.ndarray:
+        return self.band[0]
+
+    @property
+    def high(self) -> np.ndarray:
+        return self.band[1]
+
+
 @dataclass
 class DayEvents:
     """The events of one evaluated business day."""
@@ -148,6 +191,8 @@ def replay(
     stop_t = returns.shape[0] if stop_t is None else stop_t
     warm_t = max(0, from_t - plan.max_lag)
     matrix = plan.use_matrix
+    n = returns.shape[1]
+    flat = plan.pairs[:, 0] * n + plan.pairs[:, 1]
     streams = {
         text: stream(returns, text, pairs=None if matrix else plan.pairs, start=warm_t,
                      stop=stop_t, level=plan.level)
@@ -156,25 +201,26 @@ def replay(
     history: dict[str, deque[Any]] = {
         text: deque(maxlen=plan.max_lag + 1) for text in plan.measures
     }
-    n = returns.shape[1]
-    shape: int | tuple[int, int] = (n, n) if matrix else len(plan.pairs)
     for t in range(warm_t, stop_t):
         today: dict[str, Any] = {}
         for text, days in streams.items():
-            # The engine's day result goes to the rules as it is: its band is computed only
-            # when a rule reads it. Each chunk is a fresh array, so earlier days stay valid.
+            # The engine's day result goes to the rules as it is (or gathered to the pairs
+            # from a matrix): its band is computed only when a rule reads it. Each chunk
+            # is a fresh array, so earlier days held for look-backs stay valid.
             result = next(days)
-            history[text].append(result)
-            today[text] = result
+            day: Any = PairDay(result, flat, plan.level) if matrix else result
+            history[text].append(day)
+            today[text] = day
         if t < from_t:
             continue
         lagged = {}
         for text, lag in plan.lags:
             past = history[text]
-            lagged[(text, lag)] = past[-1 - lag] if len(past) > lag else MeasureDay.missing(shape)
+            lagged[(text, lag)] = (past[-1 - lag] if len(past) > lag
+                                   else MeasureDay.missing(len(plan.pairs)))
         date = dates[t]
         inputs = DayInputs(
-            date=date, measures=today, layout=None if matrix else plan.layout, lagged=lagged,
+            date=date, measures=today, layout=plan.layout, lagged=lagged,
             days_without_close=None if days_without_close is None else days_without_close[t],
             days_unchanged=None if days_unchanged is None else days_unchanged[t],
         )

@@ -20,7 +20,7 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
-from monitor.alerts import AlertBook, AlertEvent
+from monitor.alerts import AlertBook
 from monitor.config import Settings
 from monitor.engine import parse_measure, stream
 from monitor.errors import ComoveError, ConfigError, IngestError
@@ -304,20 +304,6 @@ def _inputs(store: Store, settings: Settings, symbols: Sequence[str], end: dt.da
     return _Inputs(returns, [d.date() for d in returns.index], without[rows], unchanged[rows])
 
 
-def _event_rows(plan: Plan, events: Sequence[AlertEvent]) -> list[alerts_store.EventRow]:
-    measures = {rule.name: ",".join(rule.measures()) for rule in plan.rules}
-    return [
-        alerts_store.EventRow(
-            rule=e.rule, target=e.target, opened_on=e.opened, first_breach_on=e.first_breach,
-            rule_kind=e.rule_kind, severity=e.severity, measure=measures.get(e.rule, ""),
-            event=e.event, date=e.date, value=e.value, level=e.level, low=e.low, high=e.high,
-            n=e.n, z=e.z, p=e.p, reference=e.reference, peak_value=e.peak_value,
-            peak_on=e.peak_date, days_held=e.days_held, announce=e.announce,
-        )
-        for e in events
-    ]
-
-
 def evaluate_range(
     store: Store,
     settings: Settings,
@@ -453,8 +439,9 @@ def _commit_days(store: Store, plan: Plan, scope: str, book: AlertBook, days: li
     rules = list(plan.rule_names)
     with store.begin() as conn:
         touched = alerts_store.delete_events_between(conn, rules, days[0].date, days[-1].date)
+        measures = {rule.name: ",".join(rule.measures()) for rule in plan.rules}
         touched |= alerts_store.write_events(
-            conn, _event_rows(plan, [e for day in days for e in day.events]))
+            conn, [e for day in days for e in day.events], measures)
         for day in days:
             for event in day.events:
                 if event.event == "opened":
@@ -972,10 +959,10 @@ def _feed_event(opened: dt.date, day: dt.date, event: str,
     held = (day - opened).days + 1
     gap = float((day - last_close).days) if last_close else math.nan
     return alerts_store.EventRow(
-        rule=FEED_RULE, target="all", opened_on=opened, first_breach_on=opened,
-        rule_kind="stale", severity="critical", measure="", event=event, date=day, value=gap,
+        rule=FEED_RULE, target="all", opened=opened, first_breach=opened,
+        rule_kind="stale", severity="critical", event=event, date=day, value=gap,
         level=1.0, low=math.nan, high=math.nan, n=math.nan, z=math.nan, p=math.nan,
-        reference=math.nan, peak_value=gap, peak_on=day, days_held=held, announce=True)
+        reference=math.nan, peak_value=gap, peak_date=day, days_held=held, announce=True)
 
 
 def run_daily(

@@ -9,9 +9,9 @@ from __future__ import annotations
 import datetime as dt
 import json
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol
 
 from sqlalchemy import Connection, and_, bindparam, delete, func, or_, select
 
@@ -26,17 +26,62 @@ def _num(value: float | None) -> float | None:
     return None if math.isnan(value) else value
 
 
+class EventLike(Protocol):
+    """What storing an event reads; monitor.alerts.AlertEvent has exactly these names, so
+    the evaluation hands its events over as they are (no copy per event)."""
+
+    @property
+    def rule(self) -> str: ...
+    @property
+    def target(self) -> str: ...
+    @property
+    def opened(self) -> dt.date: ...
+    @property
+    def first_breach(self) -> dt.date: ...
+    @property
+    def rule_kind(self) -> str: ...
+    @property
+    def severity(self) -> str: ...
+    @property
+    def event(self) -> str: ...
+    @property
+    def date(self) -> dt.date: ...
+    @property
+    def value(self) -> float: ...
+    @property
+    def level(self) -> float: ...
+    @property
+    def low(self) -> float: ...
+    @property
+    def high(self) -> float: ...
+    @property
+    def n(self) -> float: ...
+    @property
+    def z(self) -> float: ...
+    @property
+    def p(self) -> float: ...
+    @property
+    def reference(self) -> float: ...
+    @property
+    def peak_value(self) -> float: ...
+    @property
+    def peak_date(self) -> dt.date: ...
+    @property
+    def days_held(self) -> int: ...
+    @property
+    def announce(self) -> bool: ...
+
+
 @dataclass(frozen=True)
 class EventRow:
-    """One event to store; mirrors monitor.alerts.AlertEvent plus the measure text."""
+    """An event made outside the alert book (the data-feed alert), shaped as EventLike."""
 
     rule: str
     target: str
-    opened_on: dt.date
-    first_breach_on: dt.date
+    opened: dt.date
+    first_breach: dt.date
     rule_kind: str
     severity: str
-    measure: str
     event: str
     date: dt.date
     value: float
@@ -48,7 +93,7 @@ class EventRow:
     p: float
     reference: float
     peak_value: float
-    peak_on: dt.date
+    peak_date: dt.date
     days_held: int
     announce: bool
 
@@ -69,38 +114,41 @@ def delete_events_between(conn: Connection, rules: Sequence[str], first: dt.date
     return ids
 
 
-def write_events(conn: Connection, events: Iterable[EventRow]) -> set[int]:
-    """Insert events in bulk, creating each alert row the first time its key is seen."""
+def write_events(conn: Connection, events: Iterable[EventLike],
+                 measures: Mapping[str, str] | None = None) -> set[int]:
+    """Insert events in bulk, creating each alert row the first time its key is seen;
+    `measures` gives each rule's measure text for new alert rows."""
     rows = list(events)
+    measures = measures or {}
     if not rows:
         return set()
-    keys = {(e.rule, e.target, e.opened_on) for e in rows}
+    keys = {(e.rule, e.target, e.opened) for e in rows}
     ids = _alert_ids(conn, keys)
-    fresh: dict[tuple[str, str, dt.date], EventRow] = {}
+    fresh: dict[tuple[str, str, dt.date], EventLike] = {}
     for e in rows:
-        key = (e.rule, e.target, e.opened_on)
+        key = (e.rule, e.target, e.opened)
         if key not in ids and key not in fresh:
             fresh[key] = e
     if fresh:
         conn.execute(alerts.insert(), [
-            {"rule": e.rule, "target": e.target, "opened_on": e.opened_on,
-             "first_breach_on": e.first_breach_on, "rule_kind": e.rule_kind,
-             "severity": e.severity, "measure": e.measure, "state": "open",
+            {"rule": e.rule, "target": e.target, "opened_on": e.opened,
+             "first_breach_on": e.first_breach, "rule_kind": e.rule_kind,
+             "severity": e.severity, "measure": measures.get(e.rule, ""), "state": "open",
              "level": _num(e.level), "opened_value": _num(e.value), "announced": e.announce}
             for e in fresh.values()
         ])
         ids.update(_alert_ids(conn, set(fresh)))
     _insert_events(conn, ids, rows)
-    latest: dict[int, EventRow] = {}
+    latest: dict[int, EventLike] = {}
     for e in rows:
-        alert_id = ids[(e.rule, e.target, e.opened_on)]
+        alert_id = ids[(e.rule, e.target, e.opened)]
         if alert_id not in latest or e.date >= latest[alert_id].date:
             latest[alert_id] = e
     conn.execute(
         alerts.update().where(alerts.c.id == bindparam("b_id")).values(
             peak_value=bindparam("b_peak"), peak_on=bindparam("b_peak_on"),
             last_value=bindparam("b_last"), last_on=bindparam("b_last_on")),
-        [{"b_id": alert_id, "b_peak": _num(e.peak_value), "b_peak_on": e.peak_on,
+        [{"b_id": alert_id, "b_peak": _num(e.peak_value), "b_peak_on": e.peak_date,
           "b_last": _num(e.value), "b_last_on": e.date} for alert_id, e in latest.items()],
     )
     return set(latest)
@@ -111,9 +159,9 @@ _EVENT_COLUMNS = ("alert_id", "rule", "date", "event", "value", "level", "low", 
 
 
 def _insert_events(conn: Connection, ids: dict[tuple[str, str, dt.date], int],
-                   rows: Sequence[EventRow]) -> None:
+                   rows: Sequence[EventLike]) -> None:
     values = [
-        (ids[(e.rule, e.target, e.opened_on)], e.rule, e.date, e.event, _num(e.value),
+        (ids[(e.rule, e.target, e.opened)], e.rule, e.date, e.event, _num(e.value),
          _num(e.level), _num(e.low), _num(e.high), _num(e.n), _num(e.z), _num(e.p),
          _num(e.reference), e.days_held, e.announce)
         for e in rows
