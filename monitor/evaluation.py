@@ -14,12 +14,15 @@ full pass (its warm-up reaches back as needed), resuming from a saved alert book
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import functools
 import hashlib
 import json
+import queue
+import threading
 from collections import deque
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Generator, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -169,6 +172,62 @@ class DayEvents:
 AckLookup = Callable[[Rule, dt.date], BoolArray | None]
 
 
+_DONE = object()
+
+
+def prefetch(items: Iterator[Any], depth: int = 16) -> Generator[Any, None, None]:
+    """Run `items` in a background thread, `depth` items ahead of the consumer.
+
+    The engine's numpy work releases the GIL, so on a machine with two cores the next
+    days' correlations are computed while the rules and the alert book handle today's.
+    Results are the same objects in the same order; an error in the producer is raised
+    in the consumer.
+    """
+    buffer: queue.Queue[Any] = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+
+    def produce() -> None:
+        try:
+            for item in items:
+                while not stop.is_set():
+                    try:
+                        buffer.put(item, timeout=0.1)
+                        break
+                    except queue.Full:
+                        continue
+                if stop.is_set():
+                    return
+            buffer.put(_DONE)
+        except BaseException as exc:  # handed to the consumer, who raises it
+            buffer.put(exc)
+
+    worker = threading.Thread(target=produce, name="comove-engine", daemon=True)
+    worker.start()
+    try:
+        while True:
+            item = buffer.get()
+            if item is _DONE:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        worker.join(timeout=5)
+
+
+def _days(streams: Mapping[str, Iterator[Any]]) -> Iterator[dict[str, Any]]:
+    """One dict of every measure's result per day, from the per-measure streams."""
+    while True:
+        day: dict[str, Any] = {}
+        for text, results in streams.items():
+            item = next(results, None)
+            if item is None:
+                return
+            day[text] = item
+        yield day
+
+
 def replay(
     returns: np.ndarray,
     dates: Sequence[dt.date],
@@ -201,36 +260,39 @@ def replay(
     history: dict[str, deque[Any]] = {
         text: deque(maxlen=plan.max_lag + 1) for text in plan.measures
     }
-    for t in range(warm_t, stop_t):
-        today: dict[str, Any] = {}
-        for text, days in streams.items():
-            # The engine's day result goes to the rules as it is (or gathered to the pairs
-            # from a matrix): its band is computed only when a rule reads it. Each chunk
-            # is a fresh array, so earlier days held for look-backs stay valid.
-            result = next(days)
-            day: Any = PairDay(result, flat, plan.level) if matrix else result
-            history[text].append(day)
-            today[text] = day
-        if t < from_t:
-            continue
-        lagged = {}
-        for text, lag in plan.lags:
-            past = history[text]
-            lagged[(text, lag)] = (past[-1 - lag] if len(past) > lag
-                                   else MeasureDay.missing(len(plan.pairs)))
-        date = dates[t]
-        inputs = DayInputs(
-            date=date, measures=today, layout=plan.layout, lagged=lagged,
-            days_without_close=None if days_without_close is None else days_without_close[t],
-            days_unchanged=None if days_unchanged is None else days_unchanged[t],
-        )
-        out = DayEvents(t, date)
-        for rule in plan.rules:
-            condition = rule.evaluate(inputs)
-            muted = _muted(rule, date, mutes)
-            acked = acknowledged(rule, date) if acknowledged is not None else None
-            out.events.extend(book.step(rule, condition, date, acknowledged=acked, muted=muted))
-        yield out
+    # Closed on every way out, so the engine thread never outlives the replay.
+    with contextlib.closing(prefetch(_days(streams))) as computed:
+        for t in range(warm_t, stop_t):
+            today: dict[str, Any] = {}
+            results = next(computed)
+            for text in streams:
+                # The engine's day result goes to the rules as it is (or gathered to the pairs
+                # from a matrix): its band is computed only when a rule reads it. Each chunk
+                # is a fresh array, so earlier days held for look-backs stay valid.
+                result = results[text]
+                day: Any = PairDay(result, flat, plan.level) if matrix else result
+                history[text].append(day)
+                today[text] = day
+            if t < from_t:
+                continue
+            lagged = {}
+            for text, lag in plan.lags:
+                past = history[text]
+                lagged[(text, lag)] = (past[-1 - lag] if len(past) > lag
+                                       else MeasureDay.missing(len(plan.pairs)))
+            date = dates[t]
+            inputs = DayInputs(
+                date=date, measures=today, layout=plan.layout, lagged=lagged,
+                days_without_close=None if days_without_close is None else days_without_close[t],
+                days_unchanged=None if days_unchanged is None else days_unchanged[t],
+            )
+            out = DayEvents(t, date)
+            for rule in plan.rules:
+                condition = rule.evaluate(inputs)
+                muted = _muted(rule, date, mutes)
+                acked = acknowledged(rule, date) if acknowledged is not None else None
+                out.events.extend(book.step(rule, condition, date, acknowledged=acked, muted=muted))
+            yield out
 
 
 def _muted(rule: Rule, date: dt.date, mutes: Sequence[Mute]) -> BoolArray | None:

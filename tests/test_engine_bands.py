@@ -64,3 +64,27 @@ def test_normal_quantile_equals_scipy_norm_ppf() -> None:
     """scipy.stats.norm.ppf (general-purpose reference); 1.959964 at 95 %."""
     for level in (0.5, 0.9, 0.95, 0.999):
         assert normal_quantile(level) == pytest.approx(stats.norm.ppf((1 + level) / 2), rel=1e-12)
+
+
+def test_band_with_one_count_for_every_pair_equals_the_per_pair_formula() -> None:
+    """The shortcut for equal counts (gap-free windows) gives the textbook band:
+    tanh(atanh r +- q / sqrt(n - 3)) (Fisher z; REFERENCES.md), pair by pair."""
+    import math
+
+    import numpy as np
+
+    from monitor.engine.bands import fisher_band, normal_quantile
+
+    rng = np.random.default_rng(3)
+    r = rng.uniform(-0.99, 0.99, 500)
+    n = np.full(500, 63.0)
+    low, high = fisher_band(r, n, 0.95)
+    q = normal_quantile(0.95)
+    for k in range(0, 500, 37):
+        z = math.atanh(r[k])
+        assert abs(low[k] - math.tanh(z - q / math.sqrt(60))) < 1e-12
+        assert abs(high[k] - math.tanh(z + q / math.sqrt(60))) < 1e-12
+    mixed = n.copy()
+    mixed[7] = np.nan
+    low_mixed, _ = fisher_band(r, mixed, 0.95)
+    assert np.isnan(low_mixed[7]) and abs(low_mixed[8] - low[8]) < 1e-15
