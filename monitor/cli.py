@@ -193,6 +193,8 @@ def _backfill_args(parser: argparse.ArgumentParser) -> None:
                         help="evaluate only this rule (repeatable)")
     parser.add_argument("--force", action="store_true",
                         help="replay from the first day even when the saved state is current")
+    parser.add_argument("--no-pages", action="store_true",
+                        help="do not rebuild the history pages afterwards")
 
 
 class ProgressLine:
@@ -240,6 +242,12 @@ def _backfill(args: argparse.Namespace) -> int:
     print(f"evaluated {report.start} to {report.end}: {report.days_written} days written"
           f"{resumed}; {report.opened} opened, {report.cleared} cleared, "
           f"{report.reminders} reminders (run {report.run_id})")
+    if not args.no_pages:
+        from monitor.pipeline import build_pages, pages_folder
+
+        folder = pages_folder(settings)
+        site = build_pages(store, settings, folder)
+        print(f"pages rebuilt in {folder} ({site.written} written, {site.unchanged} unchanged)")
     return 0
 
 
@@ -536,6 +544,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return 0
+    except Exception as exc:
+        # A bug, not a user error: still one line, with a way to see the traceback.
+        if os.environ.get("COMOVE_DEBUG"):
+            raise
+        print(f"Error: unexpected {type(exc).__name__}: {exc} (set COMOVE_DEBUG=1 for the "
+              "traceback)", file=sys.stderr)
+        return 1
 
 
 def _json_default(value: Any) -> Any:

@@ -142,7 +142,7 @@ def build_context(inputs: DigestInputs) -> DigestContext:
     for facts in inputs.alerts:
         if not facts.announced:
             continue
-        if facts.opened_on == day and facts.state != "withdrawn":
+        if facts.opened_on in (day, inputs.as_of) and facts.state != "withdrawn":
             bucket = "new"
         elif facts.state == "cleared" and facts.cleared_on == day:
             bucket = "cleared"

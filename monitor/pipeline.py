@@ -641,6 +641,10 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
     names = {i.symbol: i.name for i in settings.instruments}
     with store.connect() as conn:
         rows = alerts_store.list_alerts(conn, open_on=day)
+        if as_of > day:
+            # The data-feed alert is about the days after the last close itself.
+            rows += [a for a in alerts_store.list_alerts(conn, open_on=as_of, rule=FEED_RULE)
+                     if a.opened_on > day]
         today_events = alerts_store.events_for(conn, date=day)
     by_alert: dict[int, dict[str, Any]] = {}
     for event in today_events:
@@ -661,7 +665,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
             event_today=by_alert.get(a.id),
         )
         for a in rows
-        if a.rule in plan.rule_names and a.opened_on <= day
+        if a.rule in plan.rule_names and a.opened_on <= day or a.rule == FEED_RULE
     ]
     issues, attention = _data_issues(store, panel, day, as_of, now, names)
     c = settings.correlation

@@ -114,6 +114,7 @@ def test_empty_inbox_on_a_business_day_opens_a_data_alert_and_says_so(
     assert report.digest is not None
     html = (report.digest.folder / "digest.html").read_text(encoding="utf-8")
     assert f"No closes for {day}" in html
+    assert "data-feed" in html  # the alert itself is listed, not only the headline
 
 
 def test_a_rejected_file_is_moved_aside_with_its_report(
