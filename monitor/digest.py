@@ -30,13 +30,13 @@ from email.message import EmailMessage
 from email.policy import SMTP
 from email.utils import format_datetime
 from pathlib import Path
-from statistics import NormalDist
 from typing import Any, cast
 
 import numpy as np
 
 from monitor import charts
 from monitor._typing import CorrMatrix, Float1D, ReturnKind, Severity
+from monitor.engine.bands import fisher_band
 from monitor.errors import ConfigError
 from monitor.render import format_corr, format_date, make_environment
 
@@ -619,12 +619,8 @@ def noise_band(r: float, n: float, confidence: float) -> tuple[float, float]:
     (low, high) : tuple of float
         tanh(atanh(r) -+ q / sqrt(n - 3)) with q the normal quantile.
     """
-    if not n > 3:
-        return (math.nan, math.nan)
-    q = NormalDist().inv_cdf(0.5 + confidence / 2.0)
-    z = math.atanh(r)
-    half = q / math.sqrt(n - 3.0)
-    return (math.tanh(z - half), math.tanh(z + half))
+    low, high = fisher_band(np.array([r]), np.array([n]), confidence)
+    return (float(low[0]), float(high[0]))
 
 
 def cautions(parameters: DigestParameters) -> tuple[str, ...]:

@@ -23,5 +23,5 @@ class IngestError(ComoveError):
         self.problems = problems or []
 
 
-class StoreError(ComoveError):
-    """The store cannot be opened or is at a different schema version."""
+class JobStoreError(ComoveError):
+    """The scheduler's job store cannot be opened (the main store has storage.StoreError)."""

@@ -49,7 +49,7 @@ from apscheduler.schedulers.blocking import BlockingScheduler
 from apscheduler.triggers.base import BaseTrigger
 from apscheduler.triggers.cron import CronTrigger
 
-from monitor.errors import ComoveError, ConfigError, StoreError
+from monitor.errors import ComoveError, ConfigError, JobStoreError
 
 UTC = dt.UTC
 
@@ -554,7 +554,7 @@ def _open_jobstore(url: str, scheduler: BlockingScheduler) -> SQLAlchemyJobStore
         store.start(scheduler, "default")
     except Exception as exc:  # the driver's own error is the useful part of the message
         first_line = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise StoreError(
+        raise JobStoreError(
             f"jobstore_url: {_mask_password(url)!r} cannot be opened: {first_line}"
         ) from None
     return store
@@ -633,7 +633,7 @@ def run_scheduler(
 
     Raises
     ------
-    StoreError
+    JobStoreError
         The job store cannot be opened.
 
     Notes

@@ -30,7 +30,7 @@ from monitor.rules import (
     rule_parameters,
     two_sided_p,
 )
-from monitor.rules.params import _fallback_parse
+from monitor.rules.params import _check_measure
 
 SYMBOLS = ["KLV", "ORMA", "VESK", "TEZ10", "LUMA5", "PRAX"]
 GROUPS = {"equities": ["KLV", "ORMA", "VESK"], "rates": ["TEZ10", "LUMA5"], "credit": ["PRAX"]}
@@ -254,9 +254,12 @@ def test_window_shorter_than_three_is_refused_with_rule_and_key() -> None:
     assert str(info.value).startswith("rules[0] (t).measure: ")
 
 
-def test_fallback_measure_parser_explains_a_short_window() -> None:
-    with pytest.raises(SpecError, match=r"^window 2 in 'rolling:2' is shorter than 3$"):
-        _fallback_parse("rolling:2")
+def test_a_window_shorter_than_3_is_refused_with_rule_and_key() -> None:
+    with pytest.raises(SpecError) as info:
+        build({"name": "t", "kind": "level", "measure": "rolling:2", "above": 0.5,
+               "all": True})
+    assert str(info.value).startswith("rules[0] (t).measure: ")
+    assert "window must be >= 3" in str(info.value)
 
 
 @pytest.mark.parametrize("spec", ["rollin:63", "ewma:hl=21,lambda=0.9", "ewma:lambda=1.2", "rank"])
@@ -266,11 +269,11 @@ def test_unknown_measure_spec_is_refused_with_rule_and_key(spec: str) -> None:
     assert str(info.value).startswith("rules[0] (t).measure: ")
 
 
-def test_fallback_measure_parser_reads_windows_and_decays() -> None:
-    assert _fallback_parse("rank:63").window == 63
+def test_measure_check_reads_windows_and_decays() -> None:
+    assert _check_measure("rank:63").window == 63
     # lambda from a half-life: 0.5 ** (1 / hl), the definition of a half-life.
-    assert _fallback_parse("ewma:hl=21").decay == pytest.approx(0.5 ** (1 / 21))
-    assert _fallback_parse("ewma:lambda=0.94,mean=zero").decay == 0.94
+    assert _check_measure("ewma:hl=21").decay == pytest.approx(0.5 ** (1 / 21))
+    assert _check_measure("ewma:lambda=0.94,mean=zero").decay == 0.94
 
 
 def test_rule_without_measure_uses_the_default_measure() -> None:

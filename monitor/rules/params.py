@@ -17,7 +17,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Literal
 
-from monitor.errors import ConfigError, SpecError
+from monitor.errors import ConfigError
 
 ParamType = Literal["int", "float", "str", "bool", "str_list", "str_or_list"]
 
@@ -251,60 +251,19 @@ _EWMA_SPEC = re.compile(r"^ewma:(.+)$")
 _EWMA_OPTION = re.compile(r"^(hl|lambda|mean)=([A-Za-z0-9_.+-]+)$")
 
 
-def _fallback_parse(text: str) -> MeasureSpec:
-    """Minimal reading of a spec for when the engine's parser is not importable."""
-    window_match = _WINDOW_SPEC.match(text)
-    if window_match:
-        window = int(window_match.group(2))
-        if window < MIN_WINDOW:
-            raise SpecError(f"window {window} in {text!r} is shorter than {MIN_WINDOW}")
-        family: MeasureFamily = "rolling" if window_match.group(1) == "rolling" else "rank"
-        return MeasureSpec(text=text, family=family, window=window, decay=None)
-    ewma_match = _EWMA_SPEC.match(text)
-    if not ewma_match:
-        raise SpecError(
-            f"unknown measure spec {text!r} (expected rolling:<days>, rank:<days> or "
-            "ewma:hl=<days> / ewma:lambda=<decay>)"
-        )
-    options: dict[str, str] = {}
-    for item in ewma_match.group(1).split(","):
-        option = _EWMA_OPTION.match(item)
-        if not option or option.group(1) in options:
-            raise SpecError(f"bad option {item!r} in measure spec {text!r}")
-        options[option.group(1)] = option.group(2)
-    if ("hl" in options) == ("lambda" in options):
-        raise SpecError(f"measure spec {text!r} needs exactly one of hl= or lambda=")
-    try:
-        if "hl" in options:
-            half_life = float(options["hl"])
-            if not half_life > 0:
-                raise SpecError(f"half-life in {text!r} must be positive")
-            decay = 0.5 ** (1.0 / half_life)
-        else:
-            decay = float(options["lambda"])
-    except ValueError as exc:
-        raise SpecError(f"bad number in measure spec {text!r}") from exc
-    if not 0.0 < decay < 1.0:
-        raise SpecError(f"decay lambda in {text!r} must lie strictly between 0 and 1")
-    return MeasureSpec(text=text, family="ewma", window=None, decay=decay)
-
-
 def _check_measure(text: str) -> MeasureSpec:
     """Validate a measure spec and return what the rules need of it.
 
     The engine's ``parse_measure`` is the authority on the syntax and on the canonical
-    spelling; its :class:`SpecError` propagates. Only if the engine cannot be imported does
-    the local minimal parser stand in.
+    spelling; its :class:`SpecError` propagates.
 
     Raises
     ------
     SpecError
         The spec cannot be parsed, or its window is shorter than 3.
     """
-    try:
-        from monitor.engine import parse_measure
-    except ImportError:
-        return _fallback_parse("".join(text.split()))
+    from monitor.engine import parse_measure
+
     measure = parse_measure(text)
     return MeasureSpec(
         text=measure.text, family=measure.kind, window=measure.window, decay=measure.lam

@@ -1,31 +1,21 @@
-"""Vectorised statistics the rules share: Fisher z differences and normal p-values."""
+"""Vectorised statistics the rules share: Fisher z differences and normal p-values.
+
+The p-value is the engine's (`monitor.engine.shift.two_sided_p`, exact through
+`math.erfc`); the z difference is written here in place because the daily path computes
+it for every watched pair.
+"""
 
 from __future__ import annotations
 
 import numpy as np
 
 from monitor._typing import Float1D
+from monitor.engine.shift import two_sided_p
+
+__all__ = ["fisher_difference", "two_sided_p"]
 
 _R_LIMIT = 1.0 - 1e-12
 """Correlations are clipped here so atanh stays finite for a perfectly tracking pair."""
-
-
-def two_sided_p(z: Float1D) -> Float1D:
-    """Two-sided normal p-value erfc(|z|/sqrt 2), vectorised; NaN stays NaN.
-
-    numpy has no erfc and scipy is not a runtime dependency, so this uses the Chebyshev
-    fit ``erfcc`` of Press et al., Numerical Recipes (2nd ed., section 6.2; coefficients
-    typed from memory), fractional error below 1.2e-7 everywhere; the tests check it
-    against ``math.erfc``.
-    """
-    x = np.abs(z) / np.sqrt(2.0)
-    t = 1.0 / (1.0 + 0.5 * x)
-    poly = -0.82215223 + t * 0.17087277
-    for coefficient in (1.48851587, -1.13520398, 0.27886807, -0.18628806, 0.09678418,
-                        0.37409196, 1.00002368, -1.26551223):
-        poly = coefficient + t * poly
-    with np.errstate(under="ignore"):
-        return np.asarray(t * np.exp(-x * x + poly), dtype=np.float64)
 
 
 def fisher_difference(
