@@ -69,3 +69,38 @@ def test_init_ingest_instruments_end_to_end_as_a_subprocess(tmp_path: Path) -> N
     assert lines[0] == "symbol,name,group,first,last,closes,gaps"
     assert lines[1] == "KLV,Kelvara Industrial,equities,2024-03-04,2024-03-05,2,0"
     assert lines[2] == "ORMA,,equities,2024-03-05,2024-03-05,1,0"
+
+
+class _Terminal:
+    """A stream that says it is a terminal and keeps what is written."""
+
+    def __init__(self, tty: bool) -> None:
+        self.tty = tty
+        self.text = ""
+
+    def isatty(self) -> bool:
+        return self.tty
+
+    def write(self, text: str) -> None:
+        self.text += text
+
+    def flush(self) -> None:
+        return None
+
+
+def test_backfill_progress_is_a_redrawn_bar_on_a_terminal_and_lines_otherwise() -> None:
+    import datetime as dt
+
+    from monitor.cli import ProgressLine
+
+    day = dt.date(2024, 3, 1)
+    terminal, log = _Terminal(True), _Terminal(False)
+    bar, lines = ProgressLine(terminal), ProgressLine(log)
+    for done in (10, 20, 50, 100):
+        bar(done, 100, day)
+        lines(done, 100, day)
+    assert terminal.text.count("\r") == 4 and terminal.text.endswith("\n")
+    assert "[" + "#" * 30 + "]" in terminal.text and "ETA" in terminal.text
+    assert "days/s" in terminal.text
+    assert "\r" not in log.text
+    assert log.text.splitlines()[-1].startswith("progress: 100/100 days through 2024-03-01")
