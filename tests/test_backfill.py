@@ -213,3 +213,37 @@ def test_killed_backfill_rerun_equals_one_clean_run(
     clean_store = open_settings_store(load_settings(clean_toml))
     assert _history(clean_store) == killed_history
     clean_store.dispose()
+
+
+@pytest.mark.slow
+def test_ctrl_c_keeps_what_was_committed_and_a_rerun_resumes(
+    tmp_path: Path, closes_csv: Path, write_settings: Callable[..., Settings]
+) -> None:
+    from storage import runs as runs_store
+
+    settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}", INSTRUMENTS + RULES)
+    store = init_store(settings)
+    ingest_file(store, settings, closes_csv, today=dt.date(2024, 1, 5))
+    proc = _cli(tmp_path / "comove.toml", "backfill", "--no-pages",
+                env={"COMOVE_COMMIT_DAYS": "5"})
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and proc.poll() is None:
+        with store.connect() as conn:
+            if alerts_store.events_for(conn):
+                break
+        time.sleep(0.01)
+    assert proc.poll() is None, "backfill ended before it could be interrupted"
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130
+    assert "Interrupted; every step already committed is kept." in err
+    assert "Traceback" not in err
+    with store.connect() as conn:
+        statuses = [r.status for r in runs_store.list_runs(conn, kind="backfill")]
+        kept = len(alerts_store.events_for(conn))
+    assert statuses == ["interrupted"] and kept > 0
+    rerun = _cli(tmp_path / "comove.toml", "backfill", "--no-pages")
+    out, err = rerun.communicate(timeout=120)
+    assert rerun.returncode == 0, err
+    assert "resumed after" in out
+    store.dispose()
