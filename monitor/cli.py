@@ -11,9 +11,12 @@ import argparse
 import datetime as dt
 import json
 import os
+import signal
 import sys
+import threading
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -197,6 +200,26 @@ def _backfill_args(parser: argparse.ArgumentParser) -> None:
                         help="do not rebuild the history pages afterwards")
 
 
+@contextmanager
+def stop_on_interrupt() -> Iterator[threading.Event]:
+    """A first Ctrl-C asks the work to stop at its next safe point (after committing what
+    it has); a second one stops at once."""
+    requested = threading.Event()
+
+    def handler(signum: int, frame: object) -> None:
+        if requested.is_set():
+            raise KeyboardInterrupt
+        requested.set()
+        print("\nstopping after the days evaluated so far are committed "
+              "(Ctrl-C again stops at once)", file=sys.stderr, flush=True)
+
+    previous = signal.signal(signal.SIGINT, handler)
+    try:
+        yield requested
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
 class ProgressLine:
     """Days done, rate and ETA: a redrawn bar on a terminal, plain lines otherwise."""
 
@@ -232,8 +255,10 @@ def _backfill(args: argparse.Namespace) -> int:
     store = open_settings_store(settings)
     # COMOVE_COMMIT_DAYS commits more often (the tests kill a backfill between commits).
     commit_days = int(os.environ.get("COMOVE_COMMIT_DAYS", "60"))
-    report = backfill(store, settings, args.start, args.end, rule_names=args.rule,
-                      progress=ProgressLine(), force=args.force, commit_days=commit_days)
+    with stop_on_interrupt() as stop:
+        report = backfill(store, settings, args.start, args.end, rule_names=args.rule,
+                          progress=ProgressLine(), force=args.force, commit_days=commit_days,
+                          should_stop=stop.is_set)
     if report.already_done:
         print(f"already evaluated through {report.resumed_from} with these rules and closes; "
               "nothing changed (--force replays it)")

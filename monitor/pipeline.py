@@ -317,6 +317,7 @@ def evaluate_range(
     commit_seconds: float = 1.0,
     commit_days: int = 60,
     force: bool = False,
+    should_stop: Callable[[], bool] | None = None,
 ) -> EvaluationReport:
     """Evaluate the rules on every business day from `start` to `end` and store the alerts.
 
@@ -326,7 +327,9 @@ def evaluate_range(
     (whichever comes first) together with the alert state, so an interrupted run keeps
     what it committed and a rerun resumes from there. A change to the closes on or before
     the saved state's date (a restatement, or history ingested later) makes the replay
-    start again from the first day, and so does `force`.
+    start again from the first day, and so does `force`. `should_stop` is asked after every
+    day: when it answers yes, the days evaluated so far are committed and KeyboardInterrupt
+    is raised at that safe point (the CLI's Ctrl-C), never inside a transaction.
     """
     clock = now or (lambda: dt.datetime.now(dt.UTC))
     symbols = universe(store, settings)
@@ -388,13 +391,16 @@ def evaluate_range(
             if day.t < write_from:
                 continue
             pending.append(day)
-            if (len(pending) >= commit_days or day.t == stop_t - 1
+            stopping = should_stop is not None and should_stop()
+            if (stopping or len(pending) >= commit_days or day.t == stop_t - 1
                     or time.monotonic() - last_commit >= commit_seconds):
                 _commit_days(store, plan, scope, book, pending, watermark, report, clock())
                 pending = []
                 last_commit = time.monotonic()
                 if progress is not None:
                     progress(report.days_written, total, day.date)
+            if stopping:
+                raise KeyboardInterrupt
     except KeyboardInterrupt:
         report.status = "interrupted"
         with store.begin() as conn:
