@@ -11,7 +11,7 @@ from __future__ import annotations
 import datetime as dt
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -89,7 +89,6 @@ class DigestInputs:
     data_issues: Sequence[DataIssueView] = ()
     attention: str = ""
     data_through: dt.date | None = None
-    extra_issues: Sequence[DataIssueView] = field(default_factory=tuple)
 
 
 def _instrument(symbol: str, names: Mapping[str, str]) -> Instrument:

@@ -581,7 +581,7 @@ class DigestOutcome:
 
 
 def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date,
-                 now: dt.datetime, names: dict[str, str]) -> tuple[list[Any], str]:
+                 now: dt.datetime) -> tuple[list[Any], str]:
     from monitor.digest import DataIssueView
 
     issues: list[DataIssueView] = []
@@ -625,7 +625,6 @@ def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date
     elif any(i.kind in ("stale", "missing") for i in issues):
         count = len({i.symbol for i in issues if i.kind in ("stale", "missing")})
         attention = f"{count} instrument(s) have stale or missing closes; see Data quality."
-    del names
     return issues, attention
 
 
@@ -673,7 +672,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
         for a in rows
         if a.rule in plan.rule_names and a.opened_on <= day or a.rule == FEED_RULE
     ]
-    issues, attention = _data_issues(store, panel, day, as_of, now, names)
+    issues, attention = _data_issues(store, panel, day, as_of, now)
     c = settings.correlation
     inputs = DigestInputs(
         desk=settings.desk.name, as_of=as_of, generated_at=now, returns=returns,
