@@ -8,9 +8,10 @@ state and live in :class:`monitor.alerts.AlertBook`, never in the rule.
 
 from __future__ import annotations
 
+import dataclasses
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
-from typing import ClassVar, cast
+from typing import Any, ClassVar, cast
 
 import numpy as np
 
@@ -65,6 +66,10 @@ class CommonSettings:
     severity: Severity
     remind_every: int
     hold: int
+
+    def fields(self) -> dict[str, Any]:
+        """The four as keyword arguments of a rule's constructor."""
+        return dataclasses.asdict(self)
 
 
 def read_common(reader: TableReader) -> CommonSettings:

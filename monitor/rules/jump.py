@@ -52,10 +52,7 @@ class JumpRule(Rule):
     ) -> JumpRule:
         common = read_common(reader)
         return cls(
-            name=common.name,
-            severity=common.severity,
-            remind_every=common.remind_every,
-            hold=common.hold,
+            **common.fields(),
             targets=resolve_pairs(reader, universe),
             measure=read_measure(reader, "measure", default_measure).text,
             delta=reader.read_number("delta"),

@@ -161,10 +161,7 @@ class LevelRule(Rule):
     ) -> LevelRule:
         common = read_common(reader)
         return cls(
-            name=common.name,
-            severity=common.severity,
-            remind_every=common.remind_every,
-            hold=common.hold,
+            **common.fields(),
             targets=resolve_pairs(reader, universe),
             measure=read_measure(reader, "measure", default_measure).text,
             threshold=read_threshold(reader),

@@ -103,10 +103,7 @@ class ShiftRule(Rule):
         elif not clear_z < z_level:
             raise reader.error("clear_z", f"{clear_z!r} must be below z = {z_level!r}")
         return cls(
-            name=common.name,
-            severity=common.severity,
-            remind_every=common.remind_every,
-            hold=common.hold,
+            **common.fields(),
             targets=targets,
             measure=short.text,
             test=test,

@@ -43,10 +43,7 @@ class SignRule(Rule):
     ) -> SignRule:
         common = read_common(reader)
         return cls(
-            name=common.name,
-            severity=common.severity,
-            remind_every=common.remind_every,
-            hold=common.hold,
+            **common.fields(),
             targets=resolve_pairs(reader, universe),
             measure=read_measure(reader, "measure", default_measure).text,
             expected=cast(Expected, reader.read_str("expected")),

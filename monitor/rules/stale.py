@@ -49,10 +49,7 @@ class StaleRule(Rule):
     ) -> StaleRule:
         common = read_common(reader)
         return cls(
-            name=common.name,
-            severity=common.severity,
-            remind_every=common.remind_every,
-            hold=common.hold,
+            **common.fields(),
             targets=resolve_symbols(reader, universe),
             days=reader.read_int("days"),
             unchanged=reader.read_bool("unchanged"),
