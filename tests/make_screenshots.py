@@ -13,8 +13,8 @@ import argparse
 import tempfile
 from pathlib import Path
 
-from monitor.demo import DEMO_END, run_demo
-from monitor.pages import pair_page_path
+from monitor.demo.run import DEMO_END, run_demo
+from monitor.pages.site import pair_page_path
 
 HERE = Path(__file__).resolve().parent
 CHROMIUM_ARGS = [

@@ -14,7 +14,7 @@ from collections.abc import Collection
 import numpy as np
 import pytest
 
-from monitor.alerts import AlertBook, AlertEvent, AlertKey
+from monitor.alerts.book import AlertBook, AlertEvent, AlertKey
 from monitor.rules import DayInputs, MeasureDay, PairLayout, Rule, build_rules
 
 SYMBOLS = ["KLV", "ORMA", "VESK", "TEZ10"]

@@ -13,15 +13,15 @@ import pytest
 from bs4 import BeautifulSoup
 
 from monitor.config import Settings
-from monitor.mailer import MailError
-from monitor.pipeline import (
+from monitor.demo.synthetic import generate
+from monitor.digest.mailer import MailError
+from monitor.pipeline.core import (
     evaluate_range,
     ingest_file,
     init_store,
     render_digest_files,
     send_digest,
 )
-from monitor.synthetic import generate
 from storage import Store
 from storage import alerts as alerts_store
 from storage import outbox as outbox_store

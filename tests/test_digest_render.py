@@ -18,8 +18,9 @@ import numpy as np
 import pytest
 from bs4 import BeautifulSoup, Tag
 
-from monitor import bench_digest, charts
-from monitor.digest import (
+from monitor.bench import digest_speed
+from monitor.digest import png_charts
+from monitor.digest.render import (
     MATRIX_TABLE_MAX,
     AlertHistory,
     AlertView,
@@ -40,7 +41,7 @@ from monitor.digest import (
     write_digest,
 )
 from monitor.errors import ConfigError
-from monitor.render import (
+from monitor.templating import (
     format_corr,
     format_date,
     format_percent,
@@ -626,7 +627,7 @@ def test_write_digest_writes_html_with_its_images_beside_and_eml(
     for img in page.find_all("img"):
         target = paths.html.parent / str(img["src"])
         assert target.is_file()
-        assert target.read_bytes().startswith(charts.PNG_SIGNATURE)
+        assert target.read_bytes().startswith(png_charts.PNG_SIGNATURE)
     assert paths.text.read_text(encoding="utf-8") == rendered.text
     saved = email.message_from_bytes(paths.eml.read_bytes(), policy=default_policy)
     assert saved.get_content_type() == "multipart/alternative"
@@ -638,8 +639,8 @@ def test_write_digest_writes_html_with_its_images_beside_and_eml(
 
 def test_charts_are_png_at_twice_their_display_size(rendered: RenderedDigest) -> None:
     for image in rendered.images:
-        assert image.png.startswith(charts.PNG_SIGNATURE)
-        assert charts.png_size(image.png) == (2 * image.width, 2 * image.height)
+        assert image.png.startswith(png_charts.PNG_SIGNATURE)
+        assert png_charts.png_size(image.png) == (2 * image.width, 2 * image.height)
     first = rendered.images[0]
     assert (first.width, first.height) == (640, 220)
 
@@ -647,12 +648,12 @@ def test_charts_are_png_at_twice_their_display_size(rendered: RenderedDigest) ->
 def test_alert_chart_draws_nan_gaps_and_is_byte_for_byte_repeatable() -> None:
     history = _history(gap=slice(0, 30))
     args = (history.dates, history.values, history.band_low, history.band_high)
-    one = charts.alert_history_chart(*args, level=0.8, clear_level=0.7, start=AS_OF)
-    two = charts.alert_history_chart(*args, level=0.8, clear_level=0.7, start=AS_OF)
+    one = png_charts.alert_history_chart(*args, level=0.8, clear_level=0.7, start=AS_OF)
+    two = png_charts.alert_history_chart(*args, level=0.8, clear_level=0.7, start=AS_OF)
     assert one.png == two.png
     empty = np.full(10, np.nan)
-    blank = charts.alert_history_chart(_days(10), empty, empty, empty)
-    assert blank.png.startswith(charts.PNG_SIGNATURE)
+    blank = png_charts.alert_history_chart(_days(10), empty, empty, empty)
+    assert blank.png.startswith(png_charts.PNG_SIGNATURE)
 
 
 def test_cluster_order_puts_two_interleaved_blocks_together() -> None:
@@ -662,7 +663,7 @@ def test_cluster_order_puts_two_interleaved_blocks_together() -> None:
     block = np.arange(n) % 2
     matrix = np.where(block[:, None] == block[None, :], 0.8, 0.1)
     np.fill_diagonal(matrix, 1.0)
-    order = charts.cluster_order(matrix)
+    order = png_charts.cluster_order(matrix)
     labels = block[order]
     assert sorted(order.tolist()) == list(range(n))
     assert np.count_nonzero(np.diff(labels)) == 1
@@ -675,7 +676,7 @@ def test_cluster_order_treats_unknown_pairs_as_unrelated() -> None:
         [0.9, np.nan, 1.0, np.nan],
         [np.nan, 0.9, np.nan, 1.0],
     ])
-    order = charts.cluster_order(matrix).tolist()
+    order = png_charts.cluster_order(matrix).tolist()
     assert abs(order.index(0) - order.index(2)) == 1
     assert abs(order.index(1) - order.index(3)) == 1
 
@@ -690,29 +691,29 @@ def test_average_linkage_matches_scipy_on_seeded_points() -> None:
     points = rng.normal(size=(25, 3))
     distance = np.sqrt(((points[:, None, :] - points[None, :, :]) ** 2).sum(axis=-1))
     expected = linkage(squareform(distance, checks=False), method="average")
-    ours = charts.average_linkage(distance)
+    ours = png_charts.average_linkage(distance)
     np.testing.assert_allclose(ours, expected, rtol=0, atol=1e-12)
-    assert charts.leaf_order(ours).tolist() == leaves_list(expected).tolist()
+    assert png_charts.leaf_order(ours).tolist() == leaves_list(expected).tolist()
 
 
 def test_heatmap_needs_two_instruments_and_draws_two() -> None:
     with pytest.raises(ValueError, match="at least 2 instruments"):
-        charts.heatmap_chart(["KLV"], np.ones((1, 1)))
-    image, names = charts.heatmap_chart(["KLV", "ORMA"], np.array([[1.0, 0.3], [0.3, 1.0]]))
+        png_charts.heatmap_chart(["KLV"], np.ones((1, 1)))
+    image, names = png_charts.heatmap_chart(["KLV", "ORMA"], np.array([[1.0, 0.3], [0.3, 1.0]]))
     assert sorted(names) == ["KLV", "ORMA"]
-    assert charts.png_size(image.png) == (2 * image.width, 2 * image.height)
+    assert png_charts.png_size(image.png) == (2 * image.width, 2 * image.height)
 
 
 def test_basket_chart_handles_all_nan_history() -> None:
-    image = charts.basket_history_chart(_days(5), [math.nan] * 5)
-    assert charts.png_size(image.png) == (640, 240)
+    image = png_charts.basket_history_chart(_days(5), [math.nan] * 5)
+    assert png_charts.png_size(image.png) == (640, 240)
 
 
 # --- benchmark -----------------------------------------------------------------------
 
 
 def test_benchmark_quick_json_reports_its_figures(capsys: pytest.CaptureFixture[str]) -> None:
-    assert bench_digest.main(["--quick", "--json"]) == 0
+    assert digest_speed.main(["--quick", "--json"]) == 0
     figures = json.loads(capsys.readouterr().out)
     assert figures["instruments"] == 20 and figures["groups"] == 2
     assert figures["new_alerts"] == 3

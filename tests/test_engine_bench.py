@@ -6,7 +6,7 @@ import json
 
 import pytest
 
-from monitor.bench_engine import main
+from monitor.bench.engine_speed import main
 
 
 @pytest.mark.slow

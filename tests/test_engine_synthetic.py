@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from monitor.demo.synthetic import two_regime_pair
 from monitor.engine import adjacent_shift, one_day
-from monitor.synthetic import two_regime_pair
 
 
 def test_planted_change_shows_in_rolling_values_and_the_adjacent_shift_test() -> None:

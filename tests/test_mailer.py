@@ -23,15 +23,15 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import NameOID
 
-from monitor.bench_digest import synthetic_context
-from monitor.digest import RenderedDigest, build_message, render_digest
-from monitor.errors import ConfigError
-from monitor.mailer import (
+from monitor.bench.digest_speed import synthetic_context
+from monitor.digest.mailer import (
     MailError,
     SmtpSettings,
     password_from_environment,
     send_message,
 )
+from monitor.digest.render import RenderedDigest, build_message, render_digest
+from monitor.errors import ConfigError
 
 USER = "digest-bot"
 PASSWORD = "kelvara-2026-relay"

@@ -29,9 +29,11 @@ from bs4 import BeautifulSoup, Tag
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor import bench_pages, pages_charts
+from monitor.bench import pages_speed
 from monitor.errors import ComoveError
-from monitor.pages import (
+from monitor.pages import svg_charts
+from monitor.pages.serve import make_server, server_url
+from monitor.pages.site import (
     MANIFEST_NAME,
     AckView,
     AlertSpan,
@@ -56,8 +58,7 @@ from monitor.pages import (
     safe_name,
     target_page_path,
 )
-from monitor.render import format_corr, format_date
-from monitor.serve import make_server, server_url
+from monitor.templating import format_corr, format_date
 
 HOSTILE = "<script>alert(1)</script>"
 SLASHY = "TEZ/../10"
@@ -557,7 +558,7 @@ def test_chart_title_with_markup_is_text_inside_the_svg(site: Path) -> None:
 
 
 def test_chart_with_dollar_signs_is_drawn_literally_not_as_mathtext() -> None:
-    chart = pages_charts.history_chart(DAYS[:5], [0.1] * 5, [0.0] * 5, [0.2] * 5,
+    chart = svg_charts.history_chart(DAYS[:5], [0.1] * 5, [0.0] * 5, [0.2] * 5,
                                        title="$KLV$ vs $DUNQ")
     texts = [e.text for e in ET.fromstring(chart.svg).iter() if e.tag.endswith("text")]
     assert "$KLV$ vs $DUNQ" in texts
@@ -565,15 +566,15 @@ def test_chart_with_dollar_signs_is_drawn_literally_not_as_mathtext() -> None:
 
 def test_same_chart_gives_the_same_bytes_whatever_was_drawn_before() -> None:
     history = _history("rolling:63", 9)
-    spans = [pages_charts.ChartSpan(DAYS[40], DAYS[50]), pages_charts.ChartSpan(DAYS[-3], None)]
+    spans = [svg_charts.ChartSpan(DAYS[40], DAYS[50]), svg_charts.ChartSpan(DAYS[-3], None)]
 
     def draw() -> bytes:
-        return pages_charts.history_chart(history.dates, history.values, history.band_low,
+        return svg_charts.history_chart(history.dates, history.values, history.band_low,
                                           history.band_high, spans=spans, levels=[0.6],
                                           title="KLV/DUNQ").svg
 
     first = draw()
-    pages_charts.history_chart(DAYS[:30], np.linspace(-1, 1, 30), np.full(30, np.nan),
+    svg_charts.history_chart(DAYS[:30], np.linspace(-1, 1, 30), np.full(30, np.nan),
                                np.full(30, np.nan), levels=[-0.2, 0.9], title="other")
     assert draw() == first
     assert b"<dc:date>" not in first  # no timestamp in the metadata
@@ -581,39 +582,39 @@ def test_same_chart_gives_the_same_bytes_whatever_was_drawn_before() -> None:
 
 def test_empty_single_day_and_all_missing_histories_still_draw() -> None:
     for dates, values in (([], []), (DAYS[:1], [0.3]), (DAYS[:10], [math.nan] * 10)):
-        chart = pages_charts.history_chart(dates, values, values, values)
+        chart = svg_charts.history_chart(dates, values, values, values)
         assert ET.fromstring(chart.svg).tag.endswith("svg")
 
 
 def test_chart_arrays_of_different_lengths_are_refused() -> None:
     with pytest.raises(ValueError, match="differ in length"):
-        pages_charts.history_chart(DAYS[:3], [0.1, 0.2], [0.1, 0.2], [0.1, 0.2])
+        svg_charts.history_chart(DAYS[:3], [0.1, 0.2], [0.1, 0.2], [0.1, 0.2])
 
 
 def test_date_ticks_label_months_with_the_year_at_the_start_and_each_january() -> None:
-    ticks = pages_charts.date_ticks(np.datetime64("2025-11-03"), np.datetime64("2026-04-30"))
+    ticks = svg_charts.date_ticks(np.datetime64("2025-11-03"), np.datetime64("2026-04-30"))
     assert [label for _, label in ticks] == ["Dec 2025", "Jan 2026", "Feb", "Mar", "Apr"]
     assert all(str(day).endswith("-01") for day, _ in ticks)
-    short = pages_charts.date_ticks(np.datetime64("2026-03-04"), np.datetime64("2026-03-20"))
+    short = svg_charts.date_ticks(np.datetime64("2026-03-04"), np.datetime64("2026-03-20"))
     assert [str(day) for day, _ in short] == ["2026-03-09", "2026-03-16"]  # Mondays
-    long = pages_charts.date_ticks(np.datetime64("2020-02-01"), np.datetime64("2026-03-01"))
+    long = svg_charts.date_ticks(np.datetime64("2020-02-01"), np.datetime64("2026-03-01"))
     assert [label for _, label in long][:2] == ["Jan 2021", "Jan 2022"]
 
 
 @given(st.lists(st.dates(), max_size=30))
 @settings(max_examples=100, deadline=None)
 def test_fast_date_conversion_agrees_with_numpy(days: list[date]) -> None:
-    fast = pages_charts._as_days(days)
+    fast = svg_charts._as_days(days)
     assert fast.dtype == np.dtype("datetime64[D]")
     assert fast.tolist() == np.asarray(days, dtype="datetime64[D]").tolist()
 
 
 def test_cache_key_changes_with_any_input_and_not_otherwise() -> None:
     history = _history("rolling:63", 3)
-    base = pages_charts.HistoryChartRequest.build(
+    base = svg_charts.HistoryChartRequest.build(
         history.dates, history.values, history.band_low, history.band_high, levels=(0.6,),
         title="t")
-    same = pages_charts.HistoryChartRequest.build(
+    same = svg_charts.HistoryChartRequest.build(
         list(history.dates), history.values.copy(), history.band_low, history.band_high,
         levels=[0.6], title="t")
     assert base.cache_key() == same.cache_key()
@@ -623,7 +624,7 @@ def test_cache_key_changes_with_any_input_and_not_otherwise() -> None:
         replace(base, values=values),
         replace(base, levels=(0.61,)),
         replace(base, title="u"),
-        replace(base, spans=(pages_charts.ChartSpan(DAYS[3], None),)),
+        replace(base, spans=(svg_charts.ChartSpan(DAYS[3], None),)),
     ]
     assert len({c.cache_key() for c in changed} | {base.cache_key()}) == 5
 
@@ -631,14 +632,14 @@ def test_cache_key_changes_with_any_input_and_not_otherwise() -> None:
 @pytest.mark.slow
 def test_charts_drawn_in_worker_processes_are_identical_to_charts_drawn_here() -> None:
     requests = [
-        pages_charts.HistoryChartRequest.build(
+        svg_charts.HistoryChartRequest.build(
             DAYS[:60], np.linspace(-0.5, 0.5, 60) + k / 100, np.full(60, -0.6),
-            np.full(60, 0.6), spans=[pages_charts.ChartSpan(DAYS[k % 50], None)],
+            np.full(60, 0.6), spans=[svg_charts.ChartSpan(DAYS[k % 50], None)],
             title=f"KLV{k:02d}/DUNQ")
-        for k in range(pages_charts.PARALLEL_MINIMUM)
+        for k in range(svg_charts.PARALLEL_MINIMUM)
     ]
-    here = pages_charts.render_history_charts(requests, workers=1)
-    pooled = pages_charts.render_history_charts(requests, workers=2)
+    here = svg_charts.render_history_charts(requests, workers=1)
+    pooled = svg_charts.render_history_charts(requests, workers=2)
     assert [c.svg for c in pooled] == [c.svg for c in here]
 
 
@@ -921,7 +922,7 @@ def test_server_refuses_a_folder_that_does_not_exist(tmp_path: Path) -> None:
 
 
 def test_benchmark_quick_json_reports_its_figures(capsys: pytest.CaptureFixture[str]) -> None:
-    assert bench_pages.main(["--quick", "--json"]) == 0
+    assert pages_speed.main(["--quick", "--json"]) == 0
     figures = json.loads(capsys.readouterr().out)
     assert figures["pairs"] == 8 and figures["alerts"] == 40
     assert figures["charts"] == 2 * figures["pairs"] == figures["charts_drawn"]

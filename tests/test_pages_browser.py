@@ -1,5 +1,5 @@
 """The history pages in a real browser: filtering, sorting, following links, charts loading,
-no console errors; served by monitor.serve over HTTP and opened straight from disk.
+no console errors; served by monitor.pages.serve over HTTP and opened straight from disk.
 
 Drives Debian's chromium (/usr/bin/chromium) through Playwright; Playwright's own browser
 download is never used. Without chromium the tests skip with the reason, except under CI
@@ -23,8 +23,8 @@ from urllib.parse import quote
 
 import pytest
 
-from monitor.pages import build_site
-from monitor.serve import make_server, server_url
+from monitor.pages.serve import make_server, server_url
+from monitor.pages.site import build_site
 from tests.test_pages import made_up_context
 
 pytestmark = pytest.mark.browser
@@ -72,8 +72,8 @@ def _backfill_site(folder: Path) -> BuiltSite:
     import datetime as dt
 
     from monitor.config import load_settings
-    from monitor.pipeline import build_pages, evaluate_range, ingest_file, init_store
-    from monitor.synthetic import generate
+    from monitor.demo.synthetic import generate
+    from monitor.pipeline.core import build_pages, evaluate_range, ingest_file, init_store
     from storage import alerts as alerts_store
     from tests.scenarios import INSTRUMENTS, RULES, break_scenario
 

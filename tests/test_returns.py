@@ -6,8 +6,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from monitor.data.returns import closes_to_returns
 from monitor.errors import ConfigError
-from monitor.returns import closes_to_returns
 
 
 @pytest.fixture

@@ -1,4 +1,4 @@
-"""Tests of the seeded synthetic closes generator (monitor.synthetic).
+"""Tests of the seeded synthetic closes generator (monitor.demo.synthetic).
 
 Checks use numpy and pandas directly, never the comove engine. Correlation tolerances
 use the Fisher (1915, 1921) z-transform: atanh(r_hat) has standard error 1/sqrt(n - 3)
@@ -17,8 +17,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.errors import ConfigError
-from monitor.synthetic import (
+from monitor.demo.synthetic import (
     EPISODE_KINDS,
     Episode,
     Garch,
@@ -33,6 +32,7 @@ from monitor.synthetic import (
     trading_days,
     two_regime_pair,
 )
+from monitor.errors import ConfigError
 
 DEMO_START, DEMO_END = date(2021, 1, 4), date(2024, 12, 31)
 

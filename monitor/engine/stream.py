@@ -87,7 +87,7 @@ class DayResult:
 def as_returns(returns: npt.ArrayLike) -> Returns2D:
     """The returns matrix as float64 (T, N); raises ValueError on another shape or on inf.
 
-    The matrix is produced by :mod:`monitor.returns`; a wrong one is a programming error,
+    The matrix is produced by :mod:`monitor.data.returns`; a wrong one is a programming error,
     not user input.
     """
     matrix = np.asarray(returns, dtype=np.float64)

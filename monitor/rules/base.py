@@ -50,6 +50,33 @@ PAIR_TARGET_PARAMETERS: tuple[Param, ...] = (
     Param("all", "bool", "Watch every pair of the desk's instruments.", default=False),
 )
 
+FALSE_ALARMS_PARAMETER = Param(
+    "false_alarms",
+    "float",
+    "Expected false alerts per pair per year when nothing changes (0 < rate < 1); the "
+    "opening threshold is calibrated to it.",
+    default=0.01,
+)
+"""Shared by the statistical rule kinds, whose thresholds come from a stated rate."""
+
+
+def read_false_alarms(reader: TableReader) -> float:
+    """Read ``false_alarms``: a rate strictly between 0 and 1 per pair per year.
+
+    Raises
+    ------
+    ConfigError
+        Not a number, or outside (0, 1); the message names the rule, the key and the value.
+    """
+    rate = reader.read_number("false_alarms")
+    if not 0.0 < rate < 1.0:
+        raise reader.error(
+            "false_alarms",
+            f"{rate!r} must be above 0 and below 1 (expected false alerts per pair per year)",
+        )
+    return rate
+
+
 MEASURE_PARAMETER = Param(
     "measure",
     "str",
@@ -169,6 +196,16 @@ class Rule(ABC):
     def pairs_needed(self) -> IntArray:
         """Pairs (M, 2) whose measure values the rule reads."""
         return np.empty((0, 2), dtype=np.int64)
+
+    def history_rows(self) -> int:
+        """Rows of standardised returns (:mod:`monitor.engine.scaling`) the rule reads,
+        ending on the day evaluated (``DayInputs.scaled_history``); 0 for none."""
+        return 0
+
+    def method_note(self) -> str | None:
+        """One sentence for the digest and pages: which variance and which false-alarm
+        setting stand behind this rule's alerts; None for a rule on the desk's own levels."""
+        return None
 
     @abstractmethod
     def evaluate(self, day: DayInputs) -> Condition:

@@ -178,6 +178,10 @@ class DayInputs:
         ``(measure text, lag)`` -> the measure ``lag`` business days earlier.
     days_without_close, days_unchanged : float array (N,) or None
         Inputs of ``stale`` rules; NaN for an instrument with no close yet.
+    scaled_history : float array (L, N) or None
+        Standardised returns (:func:`monitor.engine.scaling.standardise`) of the L rows
+        ending on ``date`` (last row = today), L the largest ``Rule.history_rows()``; rows
+        before the history starts are NaN. None when no rule reads them.
     """
 
     date: datetime.date
@@ -186,6 +190,7 @@ class DayInputs:
     lagged: Mapping[tuple[str, int], MeasureLike] = field(default_factory=dict)
     days_without_close: Float1D | None = None
     days_unchanged: Float1D | None = None
+    scaled_history: npt.NDArray[np.float64] | None = None
 
     def measure(self, text: str, pairs: IntArray) -> MeasureLike:
         """Measure ``text`` today at ``pairs`` (M, 2); KeyError when not supplied."""

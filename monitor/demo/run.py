@@ -19,7 +19,8 @@ from pathlib import Path
 import pandas as pd
 
 from monitor.config import load_settings
-from monitor.pipeline import (
+from monitor.demo.synthetic import demo_scenario, generate
+from monitor.pipeline.core import (
     DigestOutcome,
     EvaluationReport,
     backfill,
@@ -29,8 +30,7 @@ from monitor.pipeline import (
     pages_folder,
     render_digest_files,
 )
-from monitor.render import config_dir
-from monitor.synthetic import demo_scenario, generate
+from monitor.templating import config_dir
 
 DEMO_START = dt.date(2022, 12, 1)
 DEMO_END = dt.date(2026, 11, 27)

@@ -7,7 +7,7 @@ second build over the first (nothing changed, so nothing is rewritten). Prints t
 against the target (under 60 seconds for the full size); `--json` prints one JSON object
 instead, `--quick` runs a small size for smoke tests.
 
-Run: ``python -m monitor.bench_pages [--quick] [--json]``.
+Run: ``python -m monitor.bench.pages_speed [--quick] [--json]``.
 """
 
 from __future__ import annotations
@@ -26,7 +26,7 @@ from typing import cast
 import numpy as np
 
 from monitor import __version__
-from monitor.pages import (
+from monitor.pages.site import (
     AckView,
     AlertSpan,
     AlertSummary,
@@ -287,7 +287,8 @@ def run(pairs: int, alerts: int, days: int, workers: int | None = None) -> dict[
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the benchmark and print its figures; returns 0."""
-    parser = argparse.ArgumentParser(prog="python -m monitor.bench_pages", description=__doc__)
+    parser = argparse.ArgumentParser(
+        prog="python -m monitor.bench.pages_speed", description=__doc__)
     parser.add_argument("--quick", action="store_true", help="small size for a smoke test")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.add_argument("--workers", type=int, default=None,

@@ -34,11 +34,11 @@ from typing import Any, cast
 
 import numpy as np
 
-from monitor import charts
 from monitor._typing import CorrMatrix, Float1D, ReturnKind, Severity
+from monitor.digest import png_charts
 from monitor.engine.bands import fisher_band
 from monitor.errors import ConfigError
-from monitor.render import format_corr, format_date, make_environment
+from monitor.templating import format_corr, format_date, make_environment
 
 SEVERITY_RANK: dict[str, int] = {"critical": 0, "warning": 1, "info": 2}
 """Display order of severities, most severe first."""
@@ -716,7 +716,7 @@ def _build_charts(
     images: list[DigestImage] = []
     by_key: dict[str, DigestImage] = {}
 
-    def add(key: str, stem: str, chart: charts.ChartImage, alt: str) -> None:
+    def add(key: str, stem: str, chart: png_charts.ChartImage, alt: str) -> None:
         image = DigestImage(
             filename=f"{stem}.png",
             cid=f"{stem}.{stamp}@comove",
@@ -731,7 +731,7 @@ def _build_charts(
     for index, alert in enumerate(new_alerts, start=1):
         if alert.history is None:
             continue
-        chart = charts.alert_history_chart(
+        chart = png_charts.alert_history_chart(
             alert.history.dates, alert.history.values,
             alert.history.band_low, alert.history.band_high,
             level=alert.level, clear_level=alert.clear_level, start=alert.opened,
@@ -742,7 +742,7 @@ def _build_charts(
     for index, basket in enumerate(ctx.baskets, start=1):
         if not basket.history_dates:
             continue
-        chart = charts.basket_history_chart(
+        chart = png_charts.basket_history_chart(
             basket.history_dates, basket.history_values, title=f"{basket.group}: average"
         )
         add(
@@ -765,7 +765,7 @@ def _build_charts(
                 else "No instruments: no pairs to show.",
             ))
             continue
-        chart, ordered = charts.heatmap_chart(
+        chart, ordered = png_charts.heatmap_chart(
             heatmap.symbols, heatmap.matrix, title=f"{heatmap.group}: correlation matrix"
         )
         position = {symbol: i for i, symbol in enumerate(heatmap.symbols)}
@@ -826,7 +826,7 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
         "matrix_tables": tables,
         "images": by_key,
         "cautions": cautions(ctx.parameters),
-        "chart_key": charts.ALERT_CHART_KEY,
+        "chart_key": png_charts.ALERT_CHART_KEY,
     }
     html_template = environment.get_template("digest.html")
     html_files = html_template.render(common, image_src={k: v.filename for k, v in by_key.items()})

@@ -54,10 +54,10 @@ from typing import Any, Literal
 import jinja2
 import numpy as np
 
-from monitor import pages_charts
 from monitor._typing import Float1D, ReturnKind, Severity
 from monitor.errors import ComoveError
-from monitor.render import format_corr, format_date, make_environment, templates_dir
+from monitor.pages import svg_charts
+from monitor.templating import format_corr, format_date, make_environment, templates_dir
 
 AlertState = Literal["open", "cleared", "withdrawn"]
 TargetKind = Literal["pair", "group", "instrument"]
@@ -81,7 +81,7 @@ MANIFEST_NAME = ".comove-pages.json"
 DIGEST_ARCHIVE_DIR = "digests"
 """Folder of the site where the pipeline is expected to copy archived digests.
 
-`monitor.serve` relaxes its style policy there only, because digests are email HTML with
+`monitor.pages.serve` relaxes its style policy there only, because digests are email HTML with
 inline styles.
 """
 
@@ -883,11 +883,11 @@ def _alert_order(alert: AlertSummary) -> tuple[Any, ...]:
 def _measure_block(
     history: MeasureHistory, spans: Sequence[AlertSpan], chart_file: str, subject: str,
     confidence_level: float,
-) -> tuple[_MeasureBlock, pages_charts.HistoryChartRequest]:
+) -> tuple[_MeasureBlock, svg_charts.HistoryChartRequest]:
     mine = tuple(s for s in spans if s.measure in ("", history.measure))
-    request = pages_charts.HistoryChartRequest.build(
+    request = svg_charts.HistoryChartRequest.build(
         history.dates, history.values, history.band_low, history.band_high,
-        spans=[pages_charts.ChartSpan(s.start, s.end) for s in mine],
+        spans=[svg_charts.ChartSpan(s.start, s.end) for s in mine],
         levels=history.levels, title=f"{subject}  {history.measure}",
     )
     values = history.values
@@ -926,8 +926,8 @@ def _measure_block(
         "The key numbers are in the table below the chart."
     )
     block = _MeasureBlock(
-        history=history, chart_file=chart_file, width=pages_charts.CHART_WIDTH,
-        height=pages_charts.CHART_HEIGHT, alt=alt, days_with_value=int(known.size),
+        history=history, chart_file=chart_file, width=svg_charts.CHART_WIDTH,
+        height=svg_charts.CHART_HEIGHT, alt=alt, days_with_value=int(known.size),
         latest=latest, lowest=lowest, highest=highest, month_ends=tuple(month_ends),
         spans=mine,
     )
@@ -945,7 +945,7 @@ class _SiteRenderer:
         self.ctx = ctx
         self.environment = _environment()
         self.files: dict[str, bytes] = {}
-        self.charts: dict[str, pages_charts.HistoryChartRequest] = {}
+        self.charts: dict[str, svg_charts.HistoryChartRequest] = {}
         self.owners: dict[str, str] = {}
         self.names: dict[str, str] = {}
         for page in ctx.pairs:
@@ -1004,11 +1004,11 @@ class _SiteRenderer:
         text = template.render(
             ctx=self.ctx, root=root, current=current, cautions=cautions(self.ctx.parameters),
             severities=SEVERITIES, states=ALERT_STATES, event_words=EVENT_WORDS,
-            chart_key=pages_charts.HISTORY_CHART_KEY, rule_path=rule_page_path, **values,
+            chart_key=svg_charts.HISTORY_CHART_KEY, rule_path=rule_page_path, **values,
         )
         return text.encode("utf-8")
 
-    def build(self) -> tuple[dict[str, bytes], dict[str, pages_charts.HistoryChartRequest]]:
+    def build(self) -> tuple[dict[str, bytes], dict[str, svg_charts.HistoryChartRequest]]:
         """Render every page; charts are returned as requests, drawn by the caller."""
         ctx = self.ctx
         pages_dir = templates_dir() / "pages"
@@ -1156,7 +1156,7 @@ def render_site(ctx: SiteContext, *, workers: int = 1) -> dict[str, bytes]:
     ctx : SiteContext
         What to show.
     workers : int
-        Processes drawing the charts (see `pages_charts.render_history_charts`).
+        Processes drawing the charts (see `svg_charts.render_history_charts`).
 
     Returns
     -------
@@ -1170,7 +1170,7 @@ def render_site(ctx: SiteContext, *, workers: int = 1) -> dict[str, bytes]:
     """
     files, charts = _SiteRenderer(ctx).build()
     paths = sorted(charts)
-    drawn = pages_charts.render_history_charts([charts[p] for p in paths], workers=workers)
+    drawn = svg_charts.render_history_charts([charts[p] for p in paths], workers=workers)
     files.update({path: chart.svg for path, chart in zip(paths, drawn, strict=True)})
     return files
 
@@ -1258,7 +1258,7 @@ def build_site(
         the folder is touched.
     workers : int, optional
         Processes drawing charts; by default one per CPU, at most 4 (small sites are
-        drawn in this process anyway, see `pages_charts.PARALLEL_MINIMUM`).
+        drawn in this process anyway, see `svg_charts.PARALLEL_MINIMUM`).
 
     Returns
     -------
@@ -1302,7 +1302,7 @@ def build_site(
             unchanged += 1
         else:
             to_draw.append(path)
-    drawn = pages_charts.render_history_charts(
+    drawn = svg_charts.render_history_charts(
         [charts[p] for p in to_draw], workers=_default_workers() if workers is None else workers
     )
     for path, chart in zip(to_draw, drawn, strict=True):

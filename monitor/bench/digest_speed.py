@@ -5,7 +5,7 @@ Builds a seeded synthetic context (fictional desk, default 500 instruments in 5 
 Prints the figures against the target (under 10 seconds for the full size); `--json`
 prints one JSON object instead, `--quick` runs a small size for smoke tests.
 
-Run: ``python -m monitor.bench_digest [--quick] [--json]``.
+Run: ``python -m monitor.bench.digest_speed [--quick] [--json]``.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ from datetime import UTC, date, datetime, timedelta
 import numpy as np
 
 from monitor import __version__
-from monitor.digest import (
+from monitor.digest.render import (
     AlertHistory,
     AlertView,
     BasketView,
@@ -199,7 +199,8 @@ def run(instruments: int, groups: int, new_alerts: int) -> dict[str, object]:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the benchmark and print its figures; returns 0."""
-    parser = argparse.ArgumentParser(prog="python -m monitor.bench_digest", description=__doc__)
+    parser = argparse.ArgumentParser(
+        prog="python -m monitor.bench.digest_speed", description=__doc__)
     parser.add_argument("--quick", action="store_true", help="small size for a smoke test")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     args = parser.parse_args(argv)

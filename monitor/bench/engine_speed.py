@@ -165,7 +165,7 @@ def daily_run(columns: int, rows: int, repeat: int) -> list[dict[str, Any]]:
 
 _CHILD = """
 import json, resource, sys, time, tracemalloc
-from monitor.bench_engine import desk_returns
+from monitor.bench.engine_speed import desk_returns
 from monitor.engine import stream
 rows, columns = int(sys.argv[1]), int(sys.argv[2])
 returns = desk_returns(rows, columns, gaps=False)
@@ -195,7 +195,7 @@ print(json.dumps({"days": days, "seconds": seconds, "traced_peak_bytes": peak,
 def memory_pass(columns: int, rows: int) -> dict[str, Any]:
     """A full streamed pass in a fresh interpreter, so that its peaks are its own."""
     env = dict(os.environ)
-    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
     env["PYTHONPATH"] = root + os.pathsep + env.get("PYTHONPATH", "")
     completed = subprocess.run(
         [sys.executable, "-c", _CHILD, str(rows), str(columns)],

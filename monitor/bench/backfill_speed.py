@@ -79,7 +79,7 @@ def _peak_resident_kb() -> int:
 
 def _child(folder: Path, n_instruments: int, n_days: int) -> dict[str, object]:
     from monitor.config import load_settings
-    from monitor.pipeline import evaluate_range, ingest_file, init_store
+    from monitor.pipeline.core import evaluate_range, ingest_file, init_store
 
     started = time.perf_counter()
     closes = _closes(n_instruments, n_days, seed=11)
@@ -114,7 +114,7 @@ def run(*, quick: bool = False) -> dict[str, object]:
     n_instruments, n_days = (40, 300) if quick else (500, 2520)
     with tempfile.TemporaryDirectory(prefix="comove-bench-") as tmp:
         out = subprocess.run(
-            [sys.executable, "-m", "monitor.bench_backfill", "--child", tmp,
+            [sys.executable, "-m", "monitor.bench.backfill_speed", "--child", tmp,
              str(n_instruments), str(n_days)],
             capture_output=True, text=True, check=False)
         if out.returncode != 0:

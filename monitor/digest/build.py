@@ -3,7 +3,7 @@
 Pure apart from the engine calls: the pipeline reads the store and hands over rows and
 frames; this module picks what the evening's digest shows and computes the numbers
 beside each alert (value, band, drivers, history), the largest changes, the group
-averages and the group matrices. Rendering is `monitor.digest`'s job.
+averages and the group matrices. Rendering is `monitor.digest.render`'s job.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from monitor import __version__
-from monitor.digest import (
+from monitor.digest.render import (
     AlertHistory,
     AlertView,
     BasketView,

@@ -30,9 +30,10 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
-from monitor.alerts import AlertBook, AlertEvent
+from monitor.alerts.book import AlertBook, AlertEvent
 from monitor.engine import stream
 from monitor.engine.bands import fisher_band
+from monitor.engine.scaling import standardise
 from monitor.rules import DayInputs, MeasureDay, PairLayout, Rule
 from monitor.rules.registry import lags_needed, measures_needed, pairs_needed
 
@@ -73,6 +74,11 @@ class Plan:
     @property
     def max_lag(self) -> int:
         return max((lag for _, lag in self.lags), default=0)
+
+    @property
+    def history_rows(self) -> int:
+        """Rows of standardised returns the rules read (0: none)."""
+        return max((rule.history_rows() for rule in self.rules), default=0)
 
     @property
     def rule_names(self) -> tuple[str, ...]:
@@ -260,6 +266,12 @@ def replay(
     history: dict[str, deque[Any]] = {
         text: deque(maxlen=plan.max_lag + 1) for text in plan.measures
     }
+    rows = plan.history_rows
+    scaled = None
+    if rows:
+        # Computed on the whole matrix: each value depends only on its trailing rows, so
+        # every start row sees the same numbers. NaN rows stand before the history.
+        scaled = np.vstack([np.full((rows - 1, n), np.nan), standardise(returns)])
     # Closed on every way out, so the engine thread never outlives the replay.
     with contextlib.closing(prefetch(_days(streams))) as computed:
         for t in range(warm_t, stop_t):
@@ -285,6 +297,7 @@ def replay(
                 date=date, measures=today, layout=plan.layout, lagged=lagged,
                 days_without_close=None if days_without_close is None else days_without_close[t],
                 days_unchanged=None if days_unchanged is None else days_unchanged[t],
+                scaled_history=None if scaled is None else scaled[t:t + rows],
             )
             out = DayEvents(t, date)
             for rule in plan.rules:

@@ -1,0 +1,1 @@
+"""The alert book (lifecycle of alerts) and the replay of rules over the history."""

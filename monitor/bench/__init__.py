@@ -1,0 +1,1 @@
+"""`comove bench ...`: measured figures for each stage against its targets."""

@@ -1,0 +1,1 @@
+"""Closes in: CSV parsing and validation, returns, data quality."""

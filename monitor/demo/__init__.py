@@ -1,0 +1,1 @@
+"""The fictional desk: a seeded synthetic generator with planted episodes, and `comove demo`."""

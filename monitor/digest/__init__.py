@@ -1,0 +1,1 @@
+"""The evening digest: context, render (HTML, text, PNG charts), email and mailer."""

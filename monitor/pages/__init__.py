@@ -1,0 +1,1 @@
+"""The history pages: context, render, SVG charts, writing and the local server."""

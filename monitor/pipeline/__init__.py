@@ -1,0 +1,1 @@
+"""The only wiring between the store and the computation."""
