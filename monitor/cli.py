@@ -386,7 +386,7 @@ def _digest_args(parser: argparse.ArgumentParser) -> None:
 @command("digest", "Render the evening digest for a date (HTML, text, charts, .eml) and "
          "optionally send it.", _digest_args)
 def _digest(args: argparse.Namespace) -> int:
-    from monitor.digest.mailer import MailError
+    from monitor.digest import MailError
     from monitor.pipeline.core import (
         latest_close_date,
         open_settings_store,
@@ -466,7 +466,7 @@ def _pages(args: argparse.Namespace) -> int:
         print(f"pages in {folder}: {report.written} written, {report.unchanged} unchanged, "
               f"{report.removed} removed; open {folder / 'index.html'}")
         return 0
-    from monitor.pages.serve import make_server, server_url
+    from monitor.pages import make_server, server_url
 
     if not (folder / "index.html").is_file():
         raise ComoveError(f"no site in {folder}: run `comove pages build` first")

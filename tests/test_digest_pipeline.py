@@ -14,7 +14,7 @@ from bs4 import BeautifulSoup
 
 from monitor.config import Settings
 from monitor.demo.synthetic import generate
-from monitor.digest.mailer import MailError
+from monitor.digest import MailError
 from monitor.pipeline.core import (
     evaluate_range,
     ingest_file,

@@ -582,7 +582,7 @@ class DigestOutcome:
 
 def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date,
                  now: dt.datetime) -> tuple[list[Any], str]:
-    from monitor.digest.render import DataIssueView
+    from monitor.digest import DataIssueView
 
     issues: list[DataIssueView] = []
     if panel.empty:
@@ -631,7 +631,7 @@ def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date
 def digest_context(store: Store, settings: Settings, as_of: dt.date,
                    now: dt.datetime | None = None) -> Any:
     """The digest's context for `as_of` from the store (see monitor.digest.build)."""
-    from monitor.digest.build import AlertFacts, DigestInputs, build_context
+    from monitor.digest import AlertFacts, DigestInputs, build_context
 
     now = now or dt.datetime.now(dt.UTC)
     symbols = universe(store, settings)
@@ -701,7 +701,7 @@ def render_digest_files(store: Store, settings: Settings, as_of: dt.date,
                         out_dir: Path | None = None, now: dt.datetime | None = None
                         ) -> DigestOutcome:
     """Render the digest for `as_of` into a folder: digest.html with PNGs, .txt and .eml."""
-    from monitor.digest.render import build_message, render_digest, write_digest
+    from monitor.digest import build_message, render_digest, write_digest
 
     now = now or dt.datetime.now(dt.UTC)
     ctx = digest_context(store, settings, as_of, now)
@@ -738,7 +738,7 @@ def send_digest(
     """
     import os
 
-    from monitor.digest.mailer import MailError, SmtpSettings, send_message
+    from monitor.digest import MailError, SmtpSettings, send_message
 
     now = now or dt.datetime.now(dt.UTC)
     d = settings.digest
@@ -1062,8 +1062,7 @@ def build_pages(store: Store, settings: Settings, out_dir: Path,
     """Rebuild the history site in `out_dir` from the store, with the digest archive."""
     import shutil
 
-    from monitor.pages.build import SiteInputs, build_site_context
-    from monitor.pages.site import DigestLink, build_site
+    from monitor.pages import DigestLink, SiteInputs, build_site, build_site_context
 
     now = now or dt.datetime.now(dt.UTC)
     symbols = universe(store, settings)
