@@ -98,7 +98,7 @@ def print_frame(frame: pd.DataFrame, fmt: str = "table") -> None:
 
 @command("init", "Create the store (idempotent) and record the configured instruments.")
 def _init(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import init_store
+    from monitor.pipeline import init_store
 
     settings = load(args)
     store = init_store(settings)
@@ -125,7 +125,7 @@ def _ingest_args(parser: argparse.ArgumentParser) -> None:
 @command("ingest", "Load closes from CSV files (.csv or .csv.gz), long or wide layout.",
          _ingest_args)
 def _ingest(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import ingest_file, open_settings_store
+    from monitor.pipeline import ingest_file, open_settings_store
 
     settings = load(args)
     store = open_settings_store(settings)
@@ -177,7 +177,7 @@ def _instruments_args(parser: argparse.ArgumentParser) -> None:
 @command("instruments", "List instruments with first and last date, closes and gaps.",
          _instruments_args)
 def _instruments(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import instrument_summary, open_settings_store
+    from monitor.pipeline import instrument_summary, open_settings_store
 
     store = open_settings_store(load(args))
     print_frame(instrument_summary(store), args.format)
@@ -249,7 +249,7 @@ class ProgressLine:
 @command("backfill", "Evaluate the rules over a past range of business days and store the "
          "alerts (idempotent; an interrupted run resumes).", _backfill_args)
 def _backfill(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import backfill, open_settings_store
+    from monitor.pipeline import backfill, open_settings_store
 
     settings = load(args)
     store = open_settings_store(settings)
@@ -268,7 +268,7 @@ def _backfill(args: argparse.Namespace) -> int:
           f"{resumed}; {report.opened} opened, {report.cleared} cleared, "
           f"{report.reminders} reminders (run {report.run_id})")
     if not args.no_pages:
-        from monitor.pipeline.core import build_pages, pages_folder
+        from monitor.pipeline import build_pages, pages_folder
 
         folder = pages_folder(settings)
         site = build_pages(store, settings, folder)
@@ -293,7 +293,7 @@ def _alerts_args(parser: argparse.ArgumentParser) -> None:
 @command("alerts", "List alerts with state, severity, rule, pair, dates, values and who "
          "acknowledged them.", _alerts_args)
 def _alerts(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import list_alerts, open_settings_store
+    from monitor.pipeline import list_alerts, open_settings_store
 
     settings = load(args)
     frame = list_alerts(open_settings_store(settings), settings, open_only=not args.all,
@@ -314,7 +314,7 @@ def _ack_args(parser: argparse.ArgumentParser) -> None:
 @command("ack", "Acknowledge an alert: it stays open but leaves the needs-attention list "
          "and is no longer reminded.", _ack_args)
 def _ack(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import acknowledge, open_settings_store
+    from monitor.pipeline import acknowledge, open_settings_store
 
     settings = load(args)
     alert = acknowledge(open_settings_store(settings), settings, args.id, by=args.by,
@@ -337,7 +337,7 @@ def _mute_args(parser: argparse.ArgumentParser) -> None:
 @command("mute", "Mute a rule or a pair until a date: conditions are still recorded, just "
          "not announced.", _mute_args)
 def _mute(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import mute, open_settings_store
+    from monitor.pipeline import mute, open_settings_store
 
     settings = load(args)
     mute_id = mute(open_settings_store(settings), settings, rule=args.rule, pair=args.pair,
@@ -360,7 +360,7 @@ def _series_args(parser: argparse.ArgumentParser) -> None:
 @command("series", "Print one pair's measure from the store: date, value, band low, band "
          "high and n.", _series_args)
 def _series(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import open_settings_store, series
+    from monitor.pipeline import open_settings_store, series
 
     settings = load(args)
     frame = series(open_settings_store(settings), settings, args.a, args.b, args.measure,
@@ -387,7 +387,7 @@ def _digest_args(parser: argparse.ArgumentParser) -> None:
          "optionally send it.", _digest_args)
 def _digest(args: argparse.Namespace) -> int:
     from monitor.digest import MailError
-    from monitor.pipeline.core import (
+    from monitor.pipeline import (
         latest_close_date,
         open_settings_store,
         render_digest_files,
@@ -431,7 +431,8 @@ def _run_args(parser: argparse.ArgumentParser) -> None:
 @command("run", "Run the daily job on its schedule (closes in, rules, digest, pages), or "
          "once with --once.", _run_args)
 def _run(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import open_settings_store, run_daily_command
+    from monitor.pipeline import open_settings_store
+    from monitor.scheduler import run_daily_command
 
     settings = load(args)
     store = open_settings_store(settings)
@@ -457,7 +458,7 @@ def _pages_args(parser: argparse.ArgumentParser) -> None:
 @command("pages", "Build the alert history pages, or serve them read-only in a browser.",
          _pages_args)
 def _pages(args: argparse.Namespace) -> int:
-    from monitor.pipeline.core import build_pages, open_settings_store, pages_folder
+    from monitor.pipeline import build_pages, open_settings_store, pages_folder
 
     settings = load(args)
     folder = args.out or pages_folder(settings)

@@ -44,7 +44,7 @@ def commands_reference() -> str:
 
 
 def settings_reference() -> str:
-    from monitor.scheduler import SCHEDULE_KEYS
+    from monitor.calendar import SCHEDULE_KEYS
 
     lines = ["| key | type | default | meaning |", "| --- | --- | --- | --- |"]
     for doc in documented_keys():

@@ -18,7 +18,7 @@ import pytest
 
 from monitor.config import Settings
 from monitor.demo.synthetic import generate
-from monitor.pipeline.core import acknowledge, evaluate_range, ingest_file, init_store, mute
+from monitor.pipeline import acknowledge, evaluate_range, ingest_file, init_store, mute
 from storage import Store
 from storage import alerts as alerts_store
 from tests.scenarios import BREAK_END, BREAK_START, END, INSTRUMENTS, RULES, break_scenario
@@ -208,7 +208,7 @@ def test_killed_backfill_rerun_equals_one_clean_run(
         _, step_err = step.communicate(timeout=120)
         assert step.returncode == 0, step_err
     from monitor.config import load_settings
-    from monitor.pipeline.core import open_settings_store
+    from monitor.pipeline import open_settings_store
 
     clean_store = open_settings_store(load_settings(clean_toml))
     assert _history(clean_store) == killed_history

@@ -17,7 +17,7 @@ import pytest
 
 from monitor.config import Settings
 from monitor.demo.synthetic import generate
-from monitor.pipeline.core import ingest_file, init_store, run_daily, run_days
+from monitor.pipeline import ingest_file, init_store, run_daily, run_days
 from storage import Store
 from storage import alerts as alerts_store
 from storage import outbox as outbox_store

@@ -13,7 +13,7 @@ import pytest
 
 from monitor.config import Settings
 from monitor.errors import IngestError
-from monitor.pipeline.core import ingest_file, init_store, read_closes
+from monitor.pipeline import ingest_file, init_store, read_closes
 from storage import Store
 from storage import closes as closes_store
 

@@ -25,21 +25,18 @@ from apscheduler.jobstores.sqlalchemy import SQLAlchemyJobStore
 from apscheduler.schedulers.blocking import BlockingScheduler
 from apscheduler.triggers.cron import CronTrigger
 
+from monitor.calendar import Schedule, as_of_for, business_days_between, parse_schedule
 from monitor.errors import ComoveError, ConfigError, JobStoreError
+from monitor.logs import setup_logging
 from monitor.scheduler import (
     JOB_ID,
     MISFIRE_GRACE,
     HolidayAwareTrigger,
-    Schedule,
-    as_of_for,
-    business_days_between,
     carried_over_run_time,
     make_trigger,
     next_fire_times,
-    parse_schedule,
     previous_fire_time,
     run_scheduler,
-    setup_logging,
 )
 
 REPO = Path(__file__).resolve().parents[1]
@@ -446,7 +443,9 @@ from pathlib import Path
 
 from apscheduler.triggers.interval import IntervalTrigger
 
-from monitor.scheduler import Schedule, run_scheduler, setup_logging
+from monitor.calendar import Schedule
+from monitor.logs import setup_logging
+from monitor.scheduler import run_scheduler
 
 cfg = json.loads(Path(sys.argv[1]).read_text())
 schedule = Schedule(

@@ -79,7 +79,7 @@ def _peak_resident_kb() -> int:
 
 def _child(folder: Path, n_instruments: int, n_days: int) -> dict[str, object]:
     from monitor.config import load_settings
-    from monitor.pipeline.core import evaluate_range, ingest_file, init_store
+    from monitor.pipeline import evaluate_range, ingest_file, init_store
 
     started = time.perf_counter()
     closes = _closes(n_instruments, n_days, seed=11)

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.config import parse_settings
-from monitor.pipeline.core import ingest_file, init_store, read_closes
+from monitor.pipeline import ingest_file, init_store, read_closes
 
 INGEST_TARGET_S = 30.0
 READ_TARGET_S = 3.0

@@ -1,7 +1,7 @@
 """Reading closes files (CSV, CSV.GZ) and validating every row before anything is written.
 
 A file is parsed completely and every bad row is reported, not only the first; the store
-is touched only by `monitor.pipeline.core`, in one transaction, after this module has spoken.
+is touched only by `monitor.pipeline`, in one transaction, after this module has spoken.
 Messages follow one shape so a user can jump to the line:
 `prices.csv:123: close 'abc' for XYZ on 2024-03-05 is not a number`.
 """

@@ -1,0 +1,71 @@
+"""comove's log: stderr plus a rotating file beside the store, through `logging`."""
+
+from __future__ import annotations
+
+import logging
+import sys
+from logging.handlers import RotatingFileHandler
+from pathlib import Path
+from typing import TextIO
+
+LOG_FILE = "comove.log"
+
+
+LOG_MAX_BYTES = 5 * 1024 * 1024
+
+
+LOG_BACKUPS = 5
+
+
+_OUR_HANDLER = "_comove_handler"
+
+
+def setup_logging(
+    log_dir: Path, *, level: int = logging.INFO, stream: TextIO | None = None
+) -> logging.Logger:
+    """Send comove's log to stderr and to a rotating `comove.log` in `log_dir`.
+
+    Parameters
+    ----------
+    log_dir : Path
+        Folder of the log file (the store's folder); created if missing.
+    level : int
+        Level of the "comove" logger. APScheduler's own messages are kept at WARNING and above
+        (its tracebacks of failed runs go to the same places).
+    stream : TextIO, optional
+        Where the console copy goes; defaults to `sys.stderr` at call time.
+
+    Returns
+    -------
+    logging.Logger
+        The "comove" logger. Calling again replaces the handlers this function added, so
+        there are never duplicate lines.
+    """
+    log_dir.mkdir(parents=True, exist_ok=True)
+    formatter = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    console = logging.StreamHandler(stream if stream is not None else sys.stderr)
+    logfile = RotatingFileHandler(
+        log_dir / LOG_FILE, maxBytes=LOG_MAX_BYTES, backupCount=LOG_BACKUPS, encoding="utf-8"
+    )
+    handlers: list[logging.Handler] = [console, logfile]
+    for handler in handlers:
+        handler.setFormatter(formatter)
+        setattr(handler, _OUR_HANDLER, True)
+
+    comove = logging.getLogger("comove")
+    targets = ((comove, level), (logging.getLogger("apscheduler"), logging.WARNING))
+    previous = {
+        h for target, _ in targets for h in target.handlers if getattr(h, _OUR_HANDLER, False)
+    }
+    for old in previous:
+        for target, _ in targets:
+            target.removeHandler(old)
+        old.close()
+    for target, target_level in targets:
+        for handler in handlers:
+            target.addHandler(handler)
+        target.setLevel(target_level)
+        # Our handlers are the output; passing records on to the root would print them twice
+        # wherever the host also configured logging.
+        target.propagate = False
+    return comove

@@ -1,0 +1,233 @@
+"""The daily run: collect the inbox, the data-feed alert, evaluate, publish, and catch up
+missed days.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from monitor.config import Settings
+from monitor.errors import IngestError
+from monitor.pipeline.evaluate import EvaluationReport, evaluate_range
+from monitor.pipeline.ingest import IngestReport, ingest_file
+from monitor.pipeline.lease import evaluation_lease, renew
+from monitor.pipeline.publish import DigestOutcome, build_pages, render_digest_files, send_digest
+from monitor.pipeline.store import FEED_RULE, pages_folder, schedule_of
+from storage import Store
+from storage import alerts as alerts_store
+from storage import closes as closes_store
+from storage import runs as runs_store
+
+
+@dataclass
+class CollectReport:
+    accepted: list[IngestReport] = field(default_factory=list)
+    rejected: list[tuple[Path, str]] = field(default_factory=list)
+
+
+def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = None,
+                  now: dt.datetime | None = None) -> CollectReport:
+    """Ingest every file in the inbox (each all-or-nothing), then move it to `processed/`
+    or to `rejected/` with a `.problems.txt` report beside it."""
+    inbox = settings.inbox
+    inbox.mkdir(parents=True, exist_ok=True)
+    report = CollectReport()
+    files = sorted(p for p in inbox.iterdir()
+                   if p.is_file() and (p.name.endswith(".csv") or p.name.endswith(".csv.gz")))
+    for path in files:
+        try:
+            result = ingest_file(store, settings, path, today=today, now=now)
+        except IngestError as exc:
+            target = _move(path, inbox / "rejected")
+            lines = [str(exc), *exc.problems]
+            (target.parent / f"{target.name}.problems.txt").write_text(
+                "\n".join(lines) + "\n", encoding="utf-8")
+            report.rejected.append((target, str(exc)))
+            continue
+        _move(path, inbox / "processed")
+        report.accepted.append(result)
+    return report
+
+
+def _move(path: Path, folder: Path) -> Path:
+    folder.mkdir(parents=True, exist_ok=True)
+    target = folder / path.name
+    if target.exists():
+        stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%S%f")
+        target = folder / f"{stamp}-{path.name}"
+    path.replace(target)
+    return target
+
+
+@dataclass
+class DailyReport:
+    as_of: dt.date
+    status: str  # done | already done | failed
+    run_id: int | None = None
+    collected: CollectReport | None = None
+    evaluation: EvaluationReport | None = None
+    digest: DigestOutcome | None = None
+    feed_problem: str = ""
+    pages: Any = None
+    message: str = ""
+
+
+def _feed_alert(store: Store, settings: Settings, as_of: dt.date, last_close: dt.date | None,
+                ) -> str:
+    """Open (or keep open) the data-feed alert when `as_of` has no closes; clear it when
+    closes are there again. Returns the problem text, or '' when the feed is fine."""
+    with store.begin() as conn:
+        open_alerts = [a for a in alerts_store.list_alerts(conn, open_only=True, rule=FEED_RULE)]
+        if last_close is not None and last_close >= as_of:
+            for alert in open_alerts:
+                alerts_store.write_events(conn, [_feed_event(alert.opened_on, as_of, "cleared",
+                                                             last_close)])
+                alerts_store.refresh_states(conn, [alert.id])
+            return ""
+        problem = (f"no new closes for {as_of} by run time; latest closes are from "
+                   f"{last_close or 'never'}")
+        opened = open_alerts[0].opened_on if open_alerts else as_of
+        event = "continuing" if open_alerts else "opened"
+        alerts_store.delete_events_on(conn, [FEED_RULE], as_of)
+        ids = alerts_store.write_events(conn, [_feed_event(opened, as_of, event, last_close)])
+        alerts_store.refresh_states(conn, ids)
+    return problem
+
+
+def _feed_event(opened: dt.date, day: dt.date, event: str,
+                last_close: dt.date | None) -> alerts_store.EventRow:
+    held = (day - opened).days + 1
+    gap = float((day - last_close).days) if last_close else math.nan
+    return alerts_store.EventRow(
+        rule=FEED_RULE, target="all", opened=opened, first_breach=opened,
+        rule_kind="stale", severity="critical", event=event, date=day, value=gap,
+        level=1.0, low=math.nan, high=math.nan, n=math.nan, z=math.nan, p=math.nan,
+        reference=math.nan, peak_value=gap, peak_date=day, days_held=held, announce=True)
+
+
+def run_daily(
+    store: Store,
+    settings: Settings,
+    as_of: dt.date,
+    *,
+    force: bool = False,
+    send: bool = True,
+    pages_dir: Path | None = None,
+    now: dt.datetime | None = None,
+    environ: dict[str, str] | None = None,
+    sleep: Callable[[float], None] = time.sleep,
+    wait_seconds: float = 0.0,
+) -> DailyReport:
+    """The daily job: lease, collect the inbox, evaluate, digest (outbox, send), pages,
+    ledger. Idempotent: a second run for a done as-of date changes nothing unless `force`.
+    """
+    moment = now or dt.datetime.now(dt.UTC)
+    with store.connect() as conn:
+        done = [r for r in runs_store.list_runs(conn, kind="daily", as_of=as_of, status="done")]
+    if done and not force:
+        return DailyReport(as_of=as_of, status="already done", run_id=done[-1].id,
+                           message=f"the daily run for {as_of} is already done (run "
+                                   f"{done[-1].id}); --force reruns it")
+    with evaluation_lease(store, wait_seconds=wait_seconds) as owner:
+        with store.begin() as conn:
+            # Holding the lease, any run still marked running was cut short (its process
+            # died): say so in the ledger instead of leaving it running forever.
+            runs_store.close_unfinished(conn, now=dt.datetime.now(dt.UTC))
+            run_id = runs_store.start_run(conn, kind="daily", as_of=as_of, range_start=None,
+                                          params_hash="", now=moment)
+        report = DailyReport(as_of=as_of, status="running", run_id=run_id)
+        try:
+            report.collected = collect_inbox(store, settings, today=as_of, now=moment)
+            renew(store, owner)
+            with store.connect() as conn:
+                last = closes_store.last_close_date(conn, as_of)
+            report.feed_problem = _feed_alert(store, settings, as_of, last)
+            if last is not None:
+                report.evaluation = evaluate_range(store, settings, None, as_of, kind="evaluation",
+                                                   now=lambda: dt.datetime.now(dt.UTC))
+            renew(store, owner)
+            if last is not None:
+                if send and settings.digest.recipients:
+                    report.digest = send_digest(store, settings, as_of, resend=force,
+                                                environ=environ, sleep=sleep, now=moment)
+                else:
+                    report.digest = render_digest_files(store, settings, as_of, now=moment)
+            if pages_dir is not None:
+                report.pages = build_pages(store, settings, pages_dir, now=moment)
+        except Exception as exc:
+            with store.begin() as conn:
+                runs_store.finish_run(conn, run_id, status="failed", now=dt.datetime.now(dt.UTC),
+                                      counts=_daily_counts(report),
+                                      error=f"{type(exc).__name__}: {exc}")
+            raise
+        report.status = "done"
+        with store.begin() as conn:
+            runs_store.finish_run(conn, run_id, status="done", now=dt.datetime.now(dt.UTC),
+                                  counts=_daily_counts(report))
+    return report
+
+
+def _daily_counts(report: DailyReport) -> dict[str, object]:
+    counts: dict[str, object] = {}
+    if report.collected is not None:
+        counts["files_accepted"] = len(report.collected.accepted)
+        counts["files_rejected"] = len(report.collected.rejected)
+        counts["closes_new"] = sum(r.closes_new for r in report.collected.accepted)
+    if report.evaluation is not None:
+        counts.update({f"evaluation_{k}": v for k, v in report.evaluation.counts().items()})
+    if report.digest is not None:
+        counts["digest"] = report.digest.status
+    if report.feed_problem:
+        counts["feed_problem"] = report.feed_problem
+    return counts
+
+
+def last_completed_daily(store: Store) -> dt.date | None:
+    with store.connect() as conn:
+        done = runs_store.list_runs(conn, kind="daily", status="done")
+    return max((r.as_of for r in done), default=None)
+
+
+def run_days(store: Store, settings: Settings, as_of: dt.date, *, force: bool = False,
+             catch_up: bool = True, log: Callable[[str], None] = print) -> list[DailyReport]:
+    """Run every missed scheduled day since the last completed run (each with its own
+    ledger row and its own digest, oldest first), then `as_of`."""
+    from monitor.calendar import business_days_between
+
+    schedule = schedule_of(settings)
+    days = [as_of]
+    last = last_completed_daily(store)
+    if catch_up and last is not None and last < as_of:
+        days = business_days_between(schedule, last, as_of)
+        if as_of not in days:
+            days.append(as_of)
+    reports = []
+    for day in days:
+        report = run_daily(store, settings, day, force=force and day == as_of,
+                           pages_dir=pages_folder(settings))
+        reports.append(report)
+        log(_describe_daily(report))
+    return reports
+
+
+def _describe_daily(report: DailyReport) -> str:
+    if report.status == "already done":
+        return report.message
+    parts = [f"daily run {report.run_id} for {report.as_of}: {report.status}"]
+    if report.collected is not None:
+        parts.append(f"{len(report.collected.accepted)} file(s) ingested, "
+                     f"{len(report.collected.rejected)} rejected")
+    if report.feed_problem:
+        parts.append(f"DATA: {report.feed_problem}")
+    if report.evaluation is not None:
+        e = report.evaluation
+        parts.append(f"{e.opened} opened, {e.cleared} cleared")
+    if report.digest is not None:
+        parts.append(f"digest {report.digest.status}: {report.digest.folder}")
+    return "; ".join(parts)

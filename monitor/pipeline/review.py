@@ -1,0 +1,107 @@
+"""What the desk does with alerts from the shell: list, acknowledge, mute, and one pair's series."""
+
+from __future__ import annotations
+
+import datetime as dt
+import difflib
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+
+from monitor.config import Settings
+from monitor.engine import parse_measure, stream
+from monitor.errors import ComoveError, ConfigError
+from monitor.pipeline.evaluate import build_plan
+from monitor.pipeline.store import desk_today, read_returns, universe
+from storage import Store
+from storage import alerts as alerts_store
+
+
+def canonical_pair(settings: Settings, symbols: Sequence[str], text: str) -> str:
+    """'B/A' or 'A/B' -> the label the rules use ('A/B' in the order of the universe)."""
+    parts = text.split("/")
+    if len(parts) != 2 or not all(parts):
+        raise ConfigError(f"--pair: {text!r} is not a pair written A/B")
+    order = {symbol: k for k, symbol in enumerate(symbols)}
+    for part in parts:
+        if part not in order:
+            near = difflib.get_close_matches(part, list(order), n=1)
+            hint = f"; did you mean '{near[0]}'?" if near else ""
+            raise ConfigError(f"--pair: {part!r} is not an instrument{hint}")
+    a, b = sorted(parts, key=order.__getitem__)
+    return f"{a}/{b}"
+
+
+def list_alerts(store: Store, settings: Settings, *, open_only: bool = True,
+                since: dt.date | None = None, pair: str | None = None,
+                rule: str | None = None) -> pd.DataFrame:
+    """Alerts as a table, newest first."""
+    target = canonical_pair(settings, universe(store, settings), pair) if pair else None
+    with store.connect() as conn:
+        rows = alerts_store.list_alerts(conn, open_only=open_only, since=since, target=target,
+                                        rule=rule)
+    columns = ["id", "state", "severity", "rule", "target", "opened", "cleared", "value",
+               "peak", "level", "acknowledged_by"]
+    return pd.DataFrame(
+        [(a.id, a.state, a.severity, a.rule, a.target, a.opened_on, a.cleared_on,
+          a.last_value, a.peak_value, a.level, a.acknowledged_by) for a in rows],
+        columns=columns,
+    )
+
+
+def acknowledge(store: Store, settings: Settings, alert_id: int, *, by: str, note: str = "",
+                now: dt.datetime | None = None) -> alerts_store.AlertRow:
+    """Record an acknowledgement; the alert stays open but stops being announced."""
+    now = now or dt.datetime.now(dt.UTC)
+    if not by.strip():
+        raise ComoveError("--by: give the name of the person acknowledging")
+    with store.begin() as conn:
+        alert = alerts_store.get_alert(conn, alert_id)
+        if alert is None:
+            raise ComoveError(f"alert {alert_id} does not exist (comove alerts --all lists them)")
+        alerts_store.acknowledge(conn, alert_id, by=by.strip(), note=note, at=now,
+                                 effective_on=desk_today(settings, now))
+        found = alerts_store.get_alert(conn, alert_id)
+    assert found is not None
+    return found
+
+
+def mute(store: Store, settings: Settings, *, rule: str | None, pair: str | None,
+         until: dt.date, reason: str, now: dt.datetime | None = None) -> int:
+    """Mute a rule or a target until a date: still recorded, not announced."""
+    now = now or dt.datetime.now(dt.UTC)
+    today = desk_today(settings, now)
+    if (rule is None) == (pair is None):
+        raise ComoveError("give exactly one of --rule NAME or --pair A/B")
+    if not reason.strip():
+        raise ComoveError("--reason: say why (it is kept with the mute)")
+    if until < today:
+        raise ComoveError(f"--until: {until} is before today ({today})")
+    symbols = universe(store, settings)
+    if rule is not None:
+        build_plan(settings, symbols, [rule])
+    target = canonical_pair(settings, symbols, pair) if pair else None
+    with store.begin() as conn:
+        return alerts_store.add_mute(conn, rule=rule, target=target, from_on=today,
+                                     until=until, reason=reason.strip(), now=now)
+
+
+def series(store: Store, settings: Settings, a: str, b: str, measure: str, *,
+           start: dt.date | None = None, end: dt.date | None = None) -> pd.DataFrame:
+    """One pair's measure from the store: date, value, band low/high and n per day."""
+    symbols = universe(store, settings)
+    label = canonical_pair(settings, symbols, f"{a}/{b}")
+    spec = parse_measure(measure)
+    returns = read_returns(store, settings, [a, b], None, end)
+    if returns.empty:
+        raise ComoveError(f"no returns for {label}: ingest closes first")
+    values = returns[[a, b]].to_numpy()
+    rows = [(d.t, d.value[0], d.low[0], d.high[0], d.n[0])
+            for d in stream(values, spec, pairs=np.array([[0, 1]]),
+                            level=settings.correlation.level)]
+    frame = pd.DataFrame(rows, columns=["t", "value", "low", "high", "n"])
+    frame.insert(0, "date", [returns.index[t].date() for t in frame.pop("t")])
+    if start is not None:
+        frame = frame.loc[frame["date"] >= start]
+    return frame.reset_index(drop=True)
