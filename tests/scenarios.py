@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 
-from monitor.demo.synthetic import Episode, InstrumentSpec, Scenario
+from monitor.demo.model import Episode, InstrumentSpec, Scenario
 
 START, END = dt.date(2022, 1, 3), dt.date(2023, 12, 29)
 BREAK_START, BREAK_END = dt.date(2023, 3, 1), dt.date(2023, 5, 31)

@@ -14,9 +14,10 @@ import pandas as pd
 import pytest
 
 from monitor.config import load_settings
+from monitor.demo.model import Episode, trading_days
 from monitor.demo.run import DEMO_END, DEMO_SEED, DEMO_START, DemoReport, run_demo
-from monitor.demo.synthetic import Episode, demo_scenario, trading_days
-from monitor.pipeline.core import open_settings_store
+from monitor.demo.scenario import demo_scenario
+from monitor.pipeline import open_settings_store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
 

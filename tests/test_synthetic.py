@@ -17,19 +17,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from monitor.demo.model import EPISODE_KINDS, Episode, Garch, InstrumentSpec, Scenario, trading_days
+from monitor.demo.scenario import demo_hedge_pairs, demo_scenario
 from monitor.demo.synthetic import (
-    EPISODE_KINDS,
-    Episode,
-    Garch,
-    InstrumentSpec,
-    Scenario,
     SyntheticCloses,
-    demo_hedge_pairs,
-    demo_scenario,
     generate,
     planted_correlation,
     to_long_csv_rows,
-    trading_days,
     two_regime_pair,
 )
 from monitor.errors import ConfigError

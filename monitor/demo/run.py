@@ -19,8 +19,9 @@ from pathlib import Path
 import pandas as pd
 
 from monitor.config import load_settings
-from monitor.demo.synthetic import demo_scenario, generate
-from monitor.pipeline.core import (
+from monitor.demo.scenario import demo_scenario
+from monitor.demo.synthetic import generate
+from monitor.pipeline import (
     DigestOutcome,
     EvaluationReport,
     backfill,
