@@ -5,6 +5,7 @@ next to the package in a source checkout), the Jinja settings every rendered pag
 (autoescape for HTML, strict undefined) and the number and date filters used by the digest
 and the history pages alike. Templates never format numbers themselves: they call these
 filters, so one value reads the same way in the email, its text part and the pages.
+It also holds `tuple_fields`, which the digest's and the pages' context dataclasses share.
 """
 
 from __future__ import annotations
@@ -70,6 +71,23 @@ def config_dir() -> Path:
         Neither folder exists (a broken install).
     """
     return _shipped_dir("config")
+
+
+def tuple_fields(instance: object, *names: str) -> None:
+    """Turn the named fields of a frozen dataclass into tuples, in ``__post_init__``.
+
+    Frozen dataclasses keep whatever sequence they were given; tuples make a rendering
+    context really immutable (and hashable where its items are) and let callers pass lists.
+
+    Parameters
+    ----------
+    instance : object
+        The dataclass instance being initialised.
+    *names : str
+        Fields holding any iterable; each is replaced by a tuple of its items, in order.
+    """
+    for name in names:
+        object.__setattr__(instance, name, tuple(getattr(instance, name)))
 
 
 def _is_missing(value: object) -> bool:

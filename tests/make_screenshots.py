@@ -14,7 +14,7 @@ import tempfile
 from pathlib import Path
 
 from monitor.demo.run import DEMO_END, run_demo
-from monitor.pages.site import pair_page_path
+from monitor.pages.paths import pair_page_path
 
 HERE = Path(__file__).resolve().parent
 CHROMIUM_ARGS = [

@@ -30,11 +30,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.bench import pages_speed
+from monitor.cautions import cautions
 from monitor.errors import ComoveError
 from monitor.pages import svg_charts
-from monitor.pages.serve import make_server, server_url
-from monitor.pages.site import (
-    MANIFEST_NAME,
+from monitor.pages.context import (
     AckView,
     AlertSpan,
     AlertSummary,
@@ -50,14 +49,11 @@ from monitor.pages.site import (
     SiteContext,
     SiteParameters,
     TargetPage,
-    build_site,
-    cautions,
-    pair_page_path,
-    render_site,
-    rule_page_path,
-    safe_name,
-    target_page_path,
 )
+from monitor.pages.paths import pair_page_path, rule_page_path, safe_name, target_page_path
+from monitor.pages.render import render_site
+from monitor.pages.serve import make_server, server_url
+from monitor.pages.write import MANIFEST_NAME, build_site
 from monitor.templating import format_corr, format_date
 
 HOSTILE = "<script>alert(1)</script>"
@@ -383,7 +379,8 @@ def test_every_page_has_the_cautions_navigation_data_date_version_and_build_time
     site: Path,
 ) -> None:
     ctx = made_up_context()
-    expected = cautions(ctx.parameters)
+    expected = cautions(ctx.parameters.confidence_level, where="pages")
+    assert len(expected) == 5
     for page in _html_pages(site):
         soup = _soup(page)
         footer = _one(soup, "footer")
@@ -399,7 +396,8 @@ def test_every_page_has_the_cautions_navigation_data_date_version_and_build_time
 
 
 def test_cautions_say_monitoring_aid_noise_band_no_cause_no_advice_and_firm_decides() -> None:
-    text = " ".join(cautions(SiteParameters(("rolling:63",), "log", 0.9))).lower()
+    level = SiteParameters(("rolling:63",), "log", 0.9).confidence_level
+    text = " ".join(cautions(level, where="pages")).lower()
     for words in ("monitoring aid", "noisy", "90 % band", "not say why", "how large",
                   "nothing on these pages is investment advice", "risk policy",
                   "licensed professionals"):

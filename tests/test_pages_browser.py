@@ -24,7 +24,7 @@ from urllib.parse import quote
 import pytest
 
 from monitor.pages.serve import make_server, server_url
-from monitor.pages.site import build_site
+from monitor.pages.write import build_site
 from tests.test_pages import made_up_context
 
 pytestmark = pytest.mark.browser
@@ -73,7 +73,7 @@ def _backfill_site(folder: Path) -> BuiltSite:
 
     from monitor.config import load_settings
     from monitor.demo.synthetic import generate
-    from monitor.pipeline.core import build_pages, evaluate_range, ingest_file, init_store
+    from monitor.pipeline import build_pages, evaluate_range, ingest_file, init_store
     from storage import alerts as alerts_store
     from tests.scenarios import INSTRUMENTS, RULES, break_scenario
 

@@ -26,7 +26,7 @@ from typing import cast
 import numpy as np
 
 from monitor import __version__
-from monitor.pages.site import (
+from monitor.pages.context import (
     AckView,
     AlertSpan,
     AlertSummary,
@@ -42,8 +42,8 @@ from monitor.pages.site import (
     SiteContext,
     SiteParameters,
     TargetPage,
-    build_site,
 )
+from monitor.pages.write import build_site
 
 TARGET_SECONDS = 60.0
 """Full-size target for one build from empty: 500 pairs, 2,000 alerts."""

@@ -4,7 +4,7 @@ Pure apart from the engine calls: the pipeline reads the store and hands over ro
 returns frame; this module decides which pages exist (one per pair with an alert or
 declared in a rule by name, one per group or instrument target with an alert, one per
 rule) and computes each page's measure histories and alert drivers. Rendering is
-`monitor.pages.site`'s job.
+`monitor.pages.render`'s job.
 """
 
 from __future__ import annotations
@@ -22,7 +22,7 @@ from monitor import __version__
 from monitor.engine import parse_measure, stream
 from monitor.engine.basket import basket_gauge
 from monitor.engine.drivers import drivers
-from monitor.pages.site import (
+from monitor.pages.context import (
     AckView,
     AlertSpan,
     AlertSummary,

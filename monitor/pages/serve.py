@@ -42,7 +42,7 @@ from typing import Any, cast
 from urllib.parse import unquote
 
 from monitor.errors import ComoveError
-from monitor.pages.site import DIGEST_ARCHIVE_DIR
+from monitor.pages.paths import DIGEST_ARCHIVE_DIR
 
 CONTENT_TYPES: dict[str, str] = {
     ".html": "text/html; charset=utf-8",
