@@ -15,7 +15,7 @@ from bs4 import BeautifulSoup
 from monitor.config import Settings
 from monitor.demo.synthetic import generate
 from monitor.digest import MailError
-from monitor.pipeline.core import (
+from monitor.pipeline import (
     evaluate_range,
     ingest_file,
     init_store,

@@ -20,8 +20,7 @@ from bs4 import BeautifulSoup, Tag
 
 from monitor.bench import digest_speed
 from monitor.digest import png_charts
-from monitor.digest.render import (
-    MATRIX_TABLE_MAX,
+from monitor.digest.context import (
     AlertHistory,
     AlertView,
     BasketView,
@@ -32,14 +31,13 @@ from monitor.digest.render import (
     HeatmapView,
     Instrument,
     MoverView,
-    RenderedDigest,
-    build_message,
-    cautions,
-    digest_subject,
-    noise_band,
-    render_digest,
-    write_digest,
 )
+from monitor.digest.figures import MATRIX_TABLE_MAX
+from monitor.digest.files import write_digest
+from monitor.digest.footer import cautions, noise_band
+from monitor.digest.message import build_message
+from monitor.digest.render import digest_subject, render_digest
+from monitor.digest.rendered import RenderedDigest
 from monitor.errors import ConfigError
 from monitor.templating import (
     format_corr,

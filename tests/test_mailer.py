@@ -30,7 +30,9 @@ from monitor.digest.mailer import (
     password_from_environment,
     send_message,
 )
-from monitor.digest.render import RenderedDigest, build_message, render_digest
+from monitor.digest.message import build_message
+from monitor.digest.render import render_digest
+from monitor.digest.rendered import RenderedDigest
 from monitor.errors import ConfigError
 
 USER = "digest-bot"

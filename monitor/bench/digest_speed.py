@@ -20,7 +20,7 @@ from datetime import UTC, date, datetime, timedelta
 import numpy as np
 
 from monitor import __version__
-from monitor.digest.render import (
+from monitor.digest.context import (
     AlertHistory,
     AlertView,
     BasketView,
@@ -31,9 +31,9 @@ from monitor.digest.render import (
     HeatmapView,
     Instrument,
     MoverView,
-    build_message,
-    render_digest,
 )
+from monitor.digest.message import build_message
+from monitor.digest.render import render_digest
 
 TARGET_SECONDS = 10.0
 """Full-size target: 500 instruments, 5 groups, 50 new alerts, charts included."""

@@ -3,7 +3,8 @@
 Pure apart from the engine calls: the pipeline reads the store and hands over rows and
 frames; this module picks what the evening's digest shows and computes the numbers
 beside each alert (value, band, drivers, history), the largest changes, the group
-averages and the group matrices. Rendering is `monitor.digest.render`'s job.
+averages and the group matrices, as `monitor.digest.context`'s dataclasses. Rendering is
+`monitor.digest.render`'s job.
 """
 
 from __future__ import annotations
@@ -18,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from monitor import __version__
-from monitor.digest.render import (
+from monitor.digest.context import (
     AlertHistory,
     AlertView,
     BasketView,
@@ -29,6 +30,7 @@ from monitor.digest.render import (
     HeatmapView,
     Instrument,
     MoverView,
+    _finite,
 )
 from monitor.engine import parse_measure, stream
 from monitor.engine.basket import basket_gauge
@@ -95,8 +97,8 @@ def _instrument(symbol: str, names: Mapping[str, str]) -> Instrument:
     return Instrument(symbol=symbol, name=names.get(symbol, ""))
 
 
-def _finite_or_none(value: float) -> float | None:
-    return None if value is None or not math.isfinite(value) else float(value)
+def _finite_or_none(value: float | None) -> float | None:
+    return float(value) if _finite(value) else None
 
 
 def _pair_series(returns: np.ndarray, a: int, b: int, measure: str, start: int, stop: int,
