@@ -15,12 +15,22 @@ class SpecError(ConfigError):
     """A measure spec such as `rolling:63` cannot be parsed."""
 
 
+class EngineInputError(ComoveError, ValueError):
+    """A bad argument to the engine: an array of the wrong shape or content, a window,
+    level, day or instrument index out of range. The one error type of `monitor.engine`
+    (a `ValueError` too, as numerical code is expected to raise)."""
+
+
 class IngestError(ComoveError):
     """A closes file could not be ingested; `problems` lists every bad row."""
 
     def __init__(self, message: str, problems: list[str] | None = None) -> None:
         super().__init__(message)
         self.problems = problems or []
+
+
+class LeaseHeld(ComoveError):
+    """Another process holds the evaluation lease (a daily run or a backfill is running)."""
 
 
 class JobStoreError(ComoveError):

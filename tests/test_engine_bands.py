@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 
 from monitor.engine import fisher_band, normal_quantile, one_day
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 
 def test_fisher_band_worked_value() -> None:
@@ -56,7 +56,7 @@ def test_day_result_band_uses_its_count_and_level() -> None:
 
 @pytest.mark.parametrize("level", [0.0, 1.0, 1.5, -0.2, "high"])
 def test_levels_outside_zero_one_are_config_errors(level: object) -> None:
-    with pytest.raises(ConfigError, match="confidence level"):
+    with pytest.raises(EngineInputError, match="confidence level"):
         normal_quantile(level)  # type: ignore[arg-type]
 
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from monitor.engine import basket_gauge, basket_pairs, basket_series, stream
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 from tests.engine_reference import desk_returns
 
 
@@ -46,5 +46,5 @@ def test_pairs_of_a_basket_are_each_unordered_pair_once() -> None:
 
 
 def test_a_basket_needs_two_members() -> None:
-    with pytest.raises(ConfigError, match="at least 2"):
+    with pytest.raises(EngineInputError, match="at least 2"):
         basket_pairs([3, 3])

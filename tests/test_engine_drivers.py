@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from monitor.engine import drivers, one_day
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 from tests.engine_reference import desk_returns
 
 
@@ -41,5 +41,5 @@ def test_a_constant_side_has_no_drivers() -> None:
 
 
 def test_window_shorter_than_three_is_a_config_error() -> None:
-    with pytest.raises(ConfigError, match="drivers window"):
+    with pytest.raises(EngineInputError, match="drivers window"):
         drivers(desk_returns(), 0, 1, 100, 2)

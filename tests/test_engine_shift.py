@@ -14,7 +14,7 @@ from monitor.engine import (
     one_day,
     two_sided_p,
 )
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 
 def test_difference_of_independent_correlations_worked_value() -> None:
@@ -84,7 +84,7 @@ def test_adjacent_shift_without_a_previous_window_is_nan() -> None:
     [({"short": 3, "long": 60}, "short window"), ({"short": 60, "long": 30}, "< long")],
 )
 def test_bad_shift_windows_are_config_errors(kwargs: dict[str, int], fragment: str) -> None:
-    with pytest.raises(ConfigError, match=fragment):
+    with pytest.raises(EngineInputError, match=fragment):
         nested_shift(regime_change(), -1, **kwargs)
-    with pytest.raises(ConfigError, match="adjacent window"):
+    with pytest.raises(EngineInputError, match="adjacent window"):
         adjacent_shift(regime_change(), -1, window=2)

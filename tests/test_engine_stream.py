@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from monitor.engine import DayResult, one_day, stream, tile
-from monitor.errors import ConfigError, SpecError
+from monitor.errors import EngineInputError, SpecError
 from tests.engine_reference import desk_returns, finite_max_difference, reference_rolling
 
 SPECS = [
@@ -118,7 +118,7 @@ def test_bad_arguments_are_reported() -> None:
     returns = desk_returns(rows=40)
     with pytest.raises(SpecError, match="rolling:2"):
         next(stream(returns, "rolling:2"))
-    with pytest.raises(ConfigError, match="level"):
+    with pytest.raises(EngineInputError, match="level"):
         next(stream(returns, "rolling:10", level=1.5))
     with pytest.raises(ValueError, match="start"):
         next(stream(returns, "rolling:10", start=30, stop=20))

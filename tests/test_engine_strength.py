@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 
 from monitor.engine import DEFAULT_LADDER, StrengthLadder, describe, direction, strength
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 
 @pytest.mark.parametrize(
@@ -45,5 +45,5 @@ def test_a_desk_can_set_its_own_ladder() -> None:
     [(), ((0.5, "a"), (0.7, "b")), ((1.5, "a"),), ((0.5, " "),), ((0.0, "a"),)],
 )
 def test_bad_ladders_are_config_errors(steps: tuple[tuple[float, str], ...]) -> None:
-    with pytest.raises(ConfigError, match="strength"):
+    with pytest.raises(EngineInputError, match="strength"):
         StrengthLadder(steps=steps)

@@ -18,19 +18,20 @@ import numpy as np
 import numpy.typing as npt
 
 from monitor.engine.layout import FloatArray
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 DEFAULT_LEVEL = 0.95
 
 
 def check_level(level: float) -> float:
-    """Validate a confidence level; raises ConfigError unless ``0 < level < 1``."""
+    """Validate a confidence level; raises EngineInputError unless ``0 < level < 1``."""
     try:
         value = float(level)
     except (TypeError, ValueError):
-        raise ConfigError(f"confidence level must be a number in (0, 1), got {level!r}") from None
+        raise EngineInputError(
+            f"confidence level must be a number in (0, 1), got {level!r}") from None
     if not 0.0 < value < 1.0:
-        raise ConfigError(f"confidence level must be in (0, 1), got {level!r}")
+        raise EngineInputError(f"confidence level must be in (0, 1), got {level!r}")
     return value
 
 

@@ -15,7 +15,7 @@ import numpy.typing as npt
 from monitor.engine.layout import FloatArray, IntArray
 from monitor.engine.spec import Measure
 from monitor.engine.stream import stream
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 
 @dataclass(frozen=True)
@@ -28,13 +28,14 @@ class BasketDay:
 
 
 def basket_members(members: npt.ArrayLike) -> IntArray:
-    """Distinct member columns, sorted; raises ConfigError for fewer than two."""
+    """Distinct member columns, sorted; raises EngineInputError for fewer than two."""
     index = np.asarray(members)
     if index.ndim != 1 or (index.size and not np.issubdtype(index.dtype, np.integer)):
-        raise ConfigError(f"basket members must be a list of instrument indices, got {members!r}")
+        raise EngineInputError(
+            f"basket members must be a list of instrument indices, got {members!r}")
     unique = np.unique(index.astype(np.intp))
     if unique.size < 2:
-        raise ConfigError(f"a basket needs at least 2 distinct members, got {unique.tolist()}")
+        raise EngineInputError(f"a basket needs at least 2 distinct members, got {unique.tolist()}")
     return unique
 
 
@@ -65,9 +66,10 @@ def basket_gauge(matrix: npt.ArrayLike, members: npt.ArrayLike, t: int = -1) -> 
     values = np.asarray(matrix, dtype=np.float64)
     pairs = basket_pairs(members)
     if values.ndim != 2 or values.shape[0] != values.shape[1]:
-        raise ValueError(f"basket_gauge needs an (N, N) matrix, got {values.shape}")
+        raise EngineInputError(f"basket_gauge needs an (N, N) matrix, got {values.shape}")
     if pairs.max() >= values.shape[0]:
-        raise ConfigError(f"basket member {int(pairs.max())} is outside 0..{values.shape[0] - 1}")
+        raise EngineInputError(
+            f"basket member {int(pairs.max())} is outside 0..{values.shape[0] - 1}")
     value, used = _average(values[pairs[:, 0], pairs[:, 1]])
     return BasketDay(t, value, used)
 

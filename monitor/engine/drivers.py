@@ -18,7 +18,7 @@ import numpy.typing as npt
 from monitor.engine.layout import FloatArray, IntArray
 from monitor.engine.stream import as_returns
 from monitor.engine.windows import window_bounds
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 
 @dataclass(frozen=True, eq=False)
@@ -63,19 +63,19 @@ def drivers(returns: npt.ArrayLike, i: int, j: int, t: int, window: int) -> Driv
 
     Raises
     ------
-    ConfigError
+    EngineInputError
         A window shorter than 3.
     """
     if isinstance(window, bool) or not isinstance(window, (int, np.integer)) or window < 3:
-        raise ConfigError(f"drivers window must be a whole number >= 3, got {window!r}")
+        raise EngineInputError(f"drivers window must be a whole number >= 3, got {window!r}")
     matrix = as_returns(returns)
     rows, columns = matrix.shape
     day = t + rows if t < 0 else t
     if not 0 <= day < rows:
-        raise ValueError(f"day {t} is outside the {rows} rows of returns")
+        raise EngineInputError(f"day {t} is outside the {rows} rows of returns")
     for name, col in (("i", i), ("j", j)):
         if not 0 <= col < columns:
-            raise ValueError(f"instrument {name}={col} is outside 0..{columns - 1}")
+            raise EngineInputError(f"instrument {name}={col} is outside 0..{columns - 1}")
     lo, hi = window_bounds(day, int(window))
     x = matrix[lo:hi, i]
     y = matrix[lo:hi, j]

@@ -71,6 +71,7 @@ from monitor.engine.layout import BoolArray, Layout
 from monitor.engine.rolling import overlay
 from monitor.engine.spec import Measure
 from monitor.engine.windows import column_shift
+from monitor.errors import EngineInputError
 
 TAIL_WEIGHT = 1e-16
 """Weight of the history a warm-up omits, relative to one new day's weight."""
@@ -250,7 +251,7 @@ def ewma_tile(
     stale : bool array ``layout.shape``
     """
     if measure.lam is None:
-        raise ValueError(f"ewma_tile needs an ewma measure, got {measure.text}")
+        raise EngineInputError(f"ewma_tile needs an ewma measure, got {measure.text}")
     lam = measure.lam
     centred = measure.centred
     valid = ~np.isnan(returns[:stop])
@@ -354,7 +355,7 @@ def _uniform_days(
     sub = state.layout
     m = state.moments
     if state.common is None:
-        raise ValueError("a uniform block needs its common rows")
+        raise EngineInputError("a uniform block needs its common rows")
     mean_left, var_left = m.mean_left.reshape(-1).copy(), m.var_left.reshape(-1).copy()
     mean_right, var_right = m.mean_right.reshape(-1).copy(), m.var_right.reshape(-1).copy()
     symmetric = sub.symmetric

@@ -17,6 +17,8 @@ from typing import Any, Protocol
 import numpy as np
 import numpy.typing as npt
 
+from monitor.errors import EngineInputError
+
 IntArray = npt.NDArray[np.intp]
 BoolArray = npt.NDArray[np.bool_]
 FloatArray = npt.NDArray[np.float64]
@@ -72,7 +74,7 @@ class Layout(Protocol):
 def _as_index(values: npt.ArrayLike, name: str) -> IntArray:
     index = np.asarray(values)
     if index.ndim != 1 or (index.size and not np.issubdtype(index.dtype, np.integer)):
-        raise ValueError(f"{name} must be a 1-D integer array, got shape {index.shape}")
+        raise EngineInputError(f"{name} must be a 1-D integer array, got shape {index.shape}")
     return index.astype(np.intp, copy=False)
 
 
@@ -189,9 +191,10 @@ class PairLayout:
     def of(cls, pairs: npt.ArrayLike) -> PairLayout:
         table = np.asarray(pairs)
         if table.ndim != 2 or table.shape[1] != 2:
-            raise ValueError(f"pairs must be an integer array of shape (P, 2), got {table.shape}")
+            raise EngineInputError(
+                f"pairs must be an integer array of shape (P, 2), got {table.shape}")
         if table.size and not np.issubdtype(table.dtype, np.integer):
-            raise ValueError(f"pairs must hold integer instrument indices, got {table.dtype}")
+            raise EngineInputError(f"pairs must hold integer instrument indices, got {table.dtype}")
         table = table.astype(np.intp, copy=False)
         return cls(table[:, 0].copy(), table[:, 1].copy())
 

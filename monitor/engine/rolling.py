@@ -55,6 +55,7 @@ from monitor.engine.windows import (
     flat_columns,
     window_stack,
 )
+from monitor.errors import EngineInputError
 
 DayArrays = tuple[FloatArray, FloatArray, BoolArray]
 
@@ -398,7 +399,7 @@ def window_tile(
     """
     window = measure.window
     if window is None:
-        raise ValueError(f"window_tile needs a rolling or rank measure, got {measure.text}")
+        raise EngineInputError(f"window_tile needs a rolling or rank measure, got {measure.text}")
     columns = np.union1d(layout.left_index, layout.right_index)
     width = layout.left_index.size + (0 if layout.symmetric else layout.right_index.size)
     pair_count = int(np.prod(layout.shape))

@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 
 from monitor._typing import Returns2D
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 DEFAULT_DECAY = 0.94
 """RiskMetrics daily decay (RiskMetrics Technical Document 1996)."""
@@ -59,18 +59,19 @@ def standardise(
 
     Raises
     ------
-    ConfigError
+    EngineInputError
         A parameter outside its range.
     """
     if not 0.0 < lam < 1.0:
-        raise ConfigError(f"volatility decay must be between 0 and 1, got {lam!r}")
+        raise EngineInputError(f"volatility decay must be between 0 and 1, got {lam!r}")
     if lookback < MIN_PRESENT:
-        raise ConfigError(f"volatility lookback must be at least {MIN_PRESENT}, got {lookback!r}")
+        raise EngineInputError(
+            f"volatility lookback must be at least {MIN_PRESENT}, got {lookback!r}")
     if not cap > 0.0:
-        raise ConfigError(f"standardised cap must be positive, got {cap!r}")
+        raise EngineInputError(f"standardised cap must be positive, got {cap!r}")
     values = np.asarray(returns, dtype=np.float64)
     if values.ndim != 2:
-        raise ConfigError(f"returns must be a (T, N) array, got shape {values.shape}")
+        raise EngineInputError(f"returns must be a (T, N) array, got shape {values.shape}")
     rows, _ = values.shape
     present = ~np.isnan(values)
     squares = np.where(present, values * values, 0.0)

@@ -24,7 +24,7 @@ import numpy.typing as npt
 
 from monitor.engine.layout import FloatArray
 from monitor.engine.stream import DayResult, as_returns, one_day
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 _erfc = np.frompyfunc(math.erfc, 1, 1)
 
@@ -94,7 +94,7 @@ class ShiftResult:
 
 def _check_window(name: str, value: int) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 4:
-        raise ConfigError(f"shift {name} window must be a whole number >= 4, got {value!r}")
+        raise EngineInputError(f"shift {name} window must be a whole number >= 4, got {value!r}")
     return int(value)
 
 
@@ -127,13 +127,13 @@ def nested_shift(
 
     Raises
     ------
-    ConfigError
+    EngineInputError
         Bad window lengths.
     """
     short = _check_window("short", short)
     long = _check_window("long", long)
     if short >= long:
-        raise ConfigError(f"shift short window must be < long window, got {short} and {long}")
+        raise EngineInputError(f"shift short window must be < long window, got {short} and {long}")
     matrix = as_returns(returns)
     recent = one_day(matrix, f"rolling:{short}", t, pairs=pairs)
     reference = one_day(matrix, f"rolling:{long}", t, pairs=pairs)

@@ -21,7 +21,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from monitor.errors import ConfigError
+from monitor.errors import EngineInputError
 
 UNDEFINED = "undefined"
 
@@ -30,7 +30,7 @@ UNDEFINED = "undefined"
 class StrengthLadder:
     """Thresholds on ``|r|``, highest first, each with its word; ``below`` for the rest.
 
-    Raises ConfigError unless the thresholds fall strictly and lie in (0, 1] and every word
+    Raises EngineInputError unless the thresholds fall strictly and lie in (0, 1] and every word
     is non-empty.
     """
 
@@ -44,20 +44,20 @@ class StrengthLadder:
 
     def __post_init__(self) -> None:
         if not self.steps:
-            raise ConfigError("strength ladder needs at least one step")
+            raise EngineInputError("strength ladder needs at least one step")
         previous = math.inf
         for threshold, word in self.steps:
             if not isinstance(threshold, (int, float)) or not 0.0 < threshold <= 1.0:
-                raise ConfigError(f"strength threshold must be in (0, 1], got {threshold!r}")
+                raise EngineInputError(f"strength threshold must be in (0, 1], got {threshold!r}")
             if threshold >= previous:
-                raise ConfigError(
+                raise EngineInputError(
                     f"strength thresholds must fall from the top, got {threshold} after {previous}"
                 )
             if not isinstance(word, str) or not word.strip():
-                raise ConfigError(f"strength word for {threshold} must be non-empty text")
+                raise EngineInputError(f"strength word for {threshold} must be non-empty text")
             previous = threshold
         if not self.below.strip():
-            raise ConfigError("strength word below the last threshold must be non-empty text")
+            raise EngineInputError("strength word below the last threshold must be non-empty text")
 
     def word(self, r: float) -> str:
         """The word for ``|r|``; ``"undefined"`` for NaN."""
