@@ -10,7 +10,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 def _commands() -> list[str]:
     text = (REPO / "README.md").read_text(encoding="utf-8")
-    return re.findall(r"```\n(.+?)\n```", text, flags=re.S)
+    return re.findall(r"^```\n(.+?)\n```$", text, flags=re.S | re.M)
 
 
 def test_readme_starts_with_one_paragraph_then_the_commands() -> None:

@@ -7,7 +7,7 @@ import time
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 
-from monitor.errors import ComoveError
+from monitor.errors import LeaseHeld
 from storage import Store
 from storage import runs as runs_store
 
@@ -16,10 +16,6 @@ LEASE_NAME = "evaluation"
 
 
 LEASE_TTL = dt.timedelta(minutes=30)
-
-
-class LeaseHeld(ComoveError):
-    """Another process holds the evaluation lease."""
 
 
 def lease_owner() -> str:

@@ -6,11 +6,11 @@ import datetime as dt
 import difflib
 from collections.abc import Sequence
 
-import numpy as np
 import pandas as pd
 
+from monitor import api
 from monitor.config import Settings
-from monitor.engine import parse_measure, stream
+from monitor.engine import parse_measure
 from monitor.errors import ComoveError, ConfigError
 from monitor.pipeline.evaluate import build_plan
 from monitor.pipeline.store import desk_today, read_returns, universe
@@ -96,12 +96,8 @@ def series(store: Store, settings: Settings, a: str, b: str, measure: str, *,
     returns = read_returns(store, settings, [a, b], None, end)
     if returns.empty:
         raise ComoveError(f"no returns for {label}: ingest closes first")
-    values = returns[[a, b]].to_numpy()
-    rows = [(d.t, d.value[0], d.low[0], d.high[0], d.n[0])
-            for d in stream(values, spec, pairs=np.array([[0, 1]]),
-                            level=settings.correlation.level)]
-    frame = pd.DataFrame(rows, columns=["t", "value", "low", "high", "n"])
-    frame.insert(0, "date", [returns.index[t].date() for t in frame.pop("t")])
-    if start is not None:
-        frame = frame.loc[frame["date"] >= start]
+    frame = api.correlations(returns, spec.text, pairs=[(a, b)],
+                             level=settings.correlation.level, start=start)
+    frame = frame.drop(columns=["pair", "stale"])
+    frame["date"] = [day.date() for day in frame["date"]]
     return frame.reset_index(drop=True)
