@@ -244,7 +244,7 @@ def _replay_world(days: int, seed: int) -> tuple[list[Rule], list[DayInputs], np
             {"name": "swing", "kind": "jump", "measure": "rolling:63", "delta": 0.25, "days": 3,
              "remind_every": 2, "group": "equities"},
             {"name": "break-up", "kind": "shift", "measure": "rolling:21", "long": "rolling:63",
-             "z": 2.0, "all": True},
+             "z": 2.0, "variance": "fisher", "all": True},
         ],
         symbols=SYMBOLS,
         groups=GROUPS,

@@ -405,8 +405,12 @@ def test_documented_defaults_are_the_defaults_applied() -> None:
     assert rule.severity == defaults["severity"] == "warning"
     assert rule.remind_every == defaults["remind_every"]
     assert rule.hold == defaults["hold"] == 1
-    assert rule.z_level == defaults["z"] == 3.0  # type: ignore[attr-defined]
-    assert rule.clear_z == 2.0  # type: ignore[attr-defined]  # documented as z - 1
+    # Default threshold: calibrated to false_alarms = 0.01 per pair per year (no fixed z).
+    assert defaults["z"] is None and defaults["false_alarms"] == 0.01
+    assert defaults["variance"] == "robust" and defaults["fdr"] == "none"
+    assert rule.z_level == pytest.approx(3.9425, abs=1e-3)  # type: ignore[attr-defined]
+    # documented as the opening threshold - 1
+    assert rule.clear_z == pytest.approx(rule.z_level - 1.0)  # type: ignore[attr-defined]
 
 
 # --- what the pipeline must compute ------------------------------------------------------
@@ -417,7 +421,7 @@ def test_rules_declare_measures_lags_and_pairs_they_read() -> None:
         {"name": "a", "kind": "level", "measure": "rolling:63", "above": 0.7,
          "pairs": ["KLV/ORMA"]},
         {"name": "b", "kind": "shift", "measure": "rolling:21", "test": "adjacent",
-         "group": "rates"},
+         "variance": "fisher", "group": "rates"},
         {"name": "c", "kind": "jump", "measure": "rolling:63", "delta": 0.3, "days": 5,
          "pairs": ["KLV/ORMA"]},
         {"name": "d", "kind": "basket", "measure": "ewma:hl=21", "above": 0.6, "group": "equities"},
@@ -573,8 +577,8 @@ def test_fisher_difference_is_nan_without_enough_observations() -> None:
 
 
 def test_nested_shift_rule_opens_on_large_z_and_reports_p() -> None:
-    rule = one(kind="shift", measure="rolling:21", long="rolling:126",
-               pairs=["KLV/ORMA", "KLV/VESK"])
+    rule = one(kind="shift", measure="rolling:21", long="rolling:126", variance="fisher",
+               z=3.0, pairs=["KLV/ORMA", "KLV/VESK"])
     day = day_for(rule, {
         "rolling:21": measure_day([0.9, 0.35], n=21.0),
         "rolling:126": measure_day([0.3, 0.3], n=126.0),
@@ -588,7 +592,8 @@ def test_nested_shift_rule_opens_on_large_z_and_reports_p() -> None:
 
 
 def test_adjacent_shift_compares_with_the_window_before() -> None:
-    rule = one(kind="shift", measure="rolling:21", test="adjacent", z=2.0, pairs=["KLV/ORMA"])
+    rule = one(kind="shift", measure="rolling:21", test="adjacent", z=2.0, variance="fisher",
+               pairs=["KLV/ORMA"])
     assert rule.lags() == [("rolling:21", 21)]
     day = day_for(rule, {"rolling:21": measure_day([0.8], n=21.0)},
                   lagged={("rolling:21", 21): measure_day([0.1], n=21.0)})
@@ -601,8 +606,10 @@ def test_adjacent_shift_compares_with_the_window_before() -> None:
 
 def test_rank_shift_widens_the_variance_by_the_spearman_factor() -> None:
     """Fieller, Hartley & Pearson (1957): var(atanh r_s) ~ 1.06/(n - 3) (typed from memory)."""
-    rank = one(kind="shift", measure="rank:21", test="adjacent", pairs=["KLV/ORMA"])
-    pearson = one(kind="shift", measure="rolling:21", test="adjacent", pairs=["KLV/ORMA"])
+    rank = one(kind="shift", measure="rank:21", test="adjacent", variance="fisher",
+               pairs=["KLV/ORMA"])
+    pearson = one(kind="shift", measure="rolling:21", test="adjacent", variance="fisher",
+                  pairs=["KLV/ORMA"])
     now, before = measure_day([0.8], n=21.0), measure_day([0.1], n=21.0)
     z_rank = rank.evaluate(day_for(rank, {"rank:21": now}, lagged={("rank:21", 21): before})).z
     z_pearson = pearson.evaluate(
@@ -618,7 +625,8 @@ def test_adjacent_shift_without_the_lagged_window_is_a_wiring_error() -> None:
 
 
 def test_shift_alert_opens_after_hold_days_and_clears_below_clear_z() -> None:
-    rule = one(kind="shift", measure="rolling:21", long="rolling:126", hold=2, pairs=["KLV/ORMA"])
+    rule = one(kind="shift", measure="rolling:21", long="rolling:126", hold=2, z=3.0,
+               variance="fisher", pairs=["KLV/ORMA"])
     shorts = [0.3, 0.9, 0.9, 0.7, 0.35]  # z: ~0, >3, >3, between 2 and 3, < 2
     days = [
         day_for(rule, {"rolling:21": measure_day([r], n=21.0),
@@ -781,3 +789,158 @@ def test_rules_and_alerts_import_no_storage_rendering_or_scheduling() -> None:
     result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                             check=True)
     assert result.stdout.strip() == "[]"
+
+
+# --- shift: robust variance, calibrated threshold, false discovery rate ------------------
+
+
+def _fat_tailed_panel(instruments: int, years: int, seed: int, *, break_row: int | None = None,
+                      new_rho: float = 0.9) -> np.ndarray:
+    """Every pair correlated 0.36 (one factor, loading 0.6); factor and idiosyncratic shocks
+    Student t(4) scaled to unit variance; one GARCH(1,1)-like variance common to all
+    instruments (alpha 0.08, beta 0.87: persistence 0.95). From ``break_row`` on, the first
+    two instruments load ``sqrt(new_rho)`` on a factor of their own (a planted break)."""
+    rng = np.random.default_rng(seed)
+    rows = 252 * years
+
+    def shocks(shape: tuple[int, int]) -> np.ndarray:
+        return rng.standard_t(4, size=shape) / math.sqrt(2.0)
+
+    factor, own, idio = shocks((rows, 1)), shocks((rows, 1)), shocks((rows, instruments))
+    unit = 0.6 * factor + 0.8 * idio
+    if break_row is not None:
+        load = math.sqrt(new_rho)
+        rest = math.sqrt(1 - load**2) * idio[break_row:, :2]
+        unit[break_row:, :2] = load * own[break_row:] + rest
+    variance, level = np.empty(rows), 1.0
+    for t in range(rows):
+        variance[t] = level
+        level = 0.05 + 0.08 * level * float(factor[t, 0]) ** 2 + 0.87 * level
+    return 0.01 * unit * np.sqrt(variance)[:, None]
+
+
+def _openings(returns: np.ndarray, table: dict[str, object]) -> tuple[Rule, list[AlertEvent]]:
+    from monitor.alerts.replay import make_plan, replay
+
+    symbols = [f"S{k:02d}" for k in range(returns.shape[1])]
+    (rule,) = build_rules([{"name": "t", "kind": "shift", "all": True, **table}],
+                          symbols=symbols, groups={}, default_measure=None)
+    plan = make_plan([rule], symbols, level=0.95)
+    dates = [START + datetime.timedelta(days=k) for k in range(returns.shape[0])]
+    events = [e for day in replay(returns, dates, plan, AlertBook()) for e in day.events]
+    return rule, [e for e in events if e.event == "opened"]
+
+
+@pytest.mark.parametrize("table", [
+    {"measure": "rolling:21", "long": "rolling:126"},
+    {"measure": "rolling:63", "test": "adjacent"},
+])
+def test_constant_fat_tailed_panel_raises_few_shift_alerts_at_the_defaults(
+    table: dict[str, object]
+) -> None:
+    """12 instruments x 10 years (66 pairs, about 620 pair-years after the warm-up): at the
+    default 0.01 per pair per year about 6 false alerts are expected at most; the check
+    allows 15 (a Poisson(6) count exceeds 15 once in a thousand). The old defaults
+    (Fisher variance, z = 3) raise hundreds on the same panel."""
+    returns = _fat_tailed_panel(12, 10, seed=31)
+    _, opened = _openings(returns, table)
+    assert len(opened) <= 15
+    _, old = _openings(returns, {**table, "variance": "fisher", "z": 3.0})
+    assert len(old) > 100
+
+
+def test_planted_break_is_found_by_the_default_nested_shift() -> None:
+    returns = _fat_tailed_panel(6, 3, seed=32, break_row=500, new_rho=0.9)
+    _, opened = _openings(returns, {"measure": "rolling:21", "long": "rolling:126"})
+    hits = [e for e in opened if e.target == "S00/S01"]
+    assert hits, "the break from 0.36 to 0.9 is not found"
+    first = (hits[0].date - START).days
+    assert 500 <= first <= 500 + 42  # found within two short windows of the break
+    assert len(opened) - len(hits) <= 2
+
+
+def test_robust_shift_reads_standardised_measures_and_divides_z_by_the_tail_factor() -> None:
+    robust = one(kind="shift", measure="rolling:21", long="rolling:126", z=3.0,
+                 pairs=["KLV/ORMA"])
+    fisher = one(kind="shift", measure="rolling:21", long="rolling:126", z=3.0,
+                 variance="fisher", pairs=["KLV/ORMA"])
+    assert robust.measures() == ["rolling:21,scale=vol", "rolling:126,scale=vol"]
+    assert robust.history_rows() == 252 and fisher.history_rows() == 0
+    rng = np.random.default_rng(33)
+    history = rng.standard_t(5, size=(252, len(SYMBOLS)))
+    from monitor.engine.variance import pair_tail_factor
+    phi = float(pair_tail_factor(history, [[0, 1]])[0])
+    assert phi > 1.2
+    short, long = measure_day([0.8], n=21.0), measure_day([0.3], n=126.0)
+    z_robust = robust.evaluate(day_for(robust, {"rolling:21,scale=vol": short,
+                                                "rolling:126,scale=vol": long},
+                                       scaled_history=history)).z[0]
+    z_fisher = fisher.evaluate(day_for(fisher, {"rolling:21": short, "rolling:126": long})).z[0]
+    assert z_fisher / z_robust == pytest.approx(math.sqrt(phi), rel=1e-12)
+    with pytest.raises(KeyError, match="scaled_history"):
+        robust.evaluate(day_for(robust, {"rolling:21,scale=vol": short,
+                                         "rolling:126,scale=vol": long}))
+
+
+def test_method_notes_say_which_variance_and_setting_stand_behind_alerts() -> None:
+    calibrated = one(kind="shift", measure="rolling:21", long="rolling:126", all=True)
+    assert calibrated.method_note() == (
+        "robust variance (returns standardised by EWMA volatility, Fisher variance times the "
+        "tail factor); threshold |z| > 3.94 for 0.01 false alerts per pair per year.")
+    raw = one(kind="shift", measure="rolling:63", test="adjacent", variance="fisher", z=3.5,
+              all=True)
+    assert raw.method_note() == ("Fisher variance 1/(n - 3) (assumes independent normal "
+                                 "returns); raw threshold |z| > 3.5 (no false-alarm rate stated).")
+    rarer = one(kind="shift", measure="rolling:21", long="rolling:126", false_alarms=0.001,
+                all=True)
+    assert rarer.z_level > calibrated.z_level  # type: ignore[attr-defined]
+    by = one(kind="shift", measure="rolling:21", long="rolling:126", fdr="by", fdr_level=0.1,
+             all=True)
+    assert "Benjamini-Yekutieli at false discovery rate 0.1" in str(by.method_note())
+
+
+def test_fdr_shift_breaches_the_pairs_benjamini_hochberg_rejects() -> None:
+    rule = one(kind="shift", measure="rolling:21", long="rolling:126", variance="fisher",
+               fdr="bh", all=True)
+    size = len(rule.targets.pairs)
+    shorts = np.full(size, 0.3)
+    shorts[:3] = [0.85, 0.75, 0.62]
+    shorts[4] = np.nan
+    condition = rule.evaluate(day_for(rule, {"rolling:21": measure_day(shorts, n=21.0),
+                                             "rolling:126": measure_day([0.3] * size, n=126.0)}))
+    from scipy.stats import false_discovery_control
+    known = np.isfinite(condition.z)
+    p = two_sided_p(condition.z[known])
+    expected = false_discovery_control(p, method="bh") <= 0.05  # scipy reference
+    np.testing.assert_array_equal(condition.breach[known], expected)
+    assert condition.breach[:2].all() and not condition.breach[4] and not condition.known[4]
+    assert not (condition.breach & condition.clear).any()
+
+
+@pytest.mark.parametrize(
+    ("table", "message"),
+    [
+        ({"variance": "huber"},
+         "rules[0] (t).variance: 'huber' is not one of robust, fisher"),
+        ({"fdr": "bonferroni"}, "rules[0] (t).fdr: 'bonferroni' is not one of none, bh, by"),
+        ({"false_alarms": 0.0},
+         "rules[0] (t).false_alarms: 0.0 must be above 0 and below 1 (expected false alerts "
+         "per pair per year)"),
+        ({"false_alarms": "often"},
+         "rules[0] (t).false_alarms: expected a number, got 'often' (str)"),
+        ({"false_alarms": 0.01, "z": 3.0},
+         "rules[0] (t).z: set either z (a raw threshold) or false_alarms, not both"),
+        ({"fdr": "bh", "z": 3.0},
+         "rules[0] (t).z: not used with fdr = 'bh' (the day's p-values decide)"),
+        ({"fdr_level": 0.1}, "rules[0] (t).fdr_level: only used with fdr = 'bh' or 'by'"),
+        ({"fdr": "by", "fdr_level": 1.5},
+         "rules[0] (t).fdr_level: 1.5 must be above 0 and below 1"),
+    ],
+)
+def test_bad_shift_variance_fdr_and_rate_settings_are_one_line_errors(
+    table: dict[str, object], message: str
+) -> None:
+    text = error_of({"name": "t", "kind": "shift", "measure": "rolling:21",
+                     "long": "rolling:126", "all": True, **table})
+    assert text == message
+    assert "\n" not in text

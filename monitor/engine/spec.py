@@ -3,10 +3,10 @@
 This module owns the spec syntax, its validation and its canonical spelling. The syntax is
 comove's own::
 
-    rolling:W[,min=M]                    Pearson over the trailing W returns
-    rank:W[,min=M]                       Spearman over the trailing W returns
-    ewma:hl=H[,mean=weighted|zero][,min=M]
-    ewma:lambda=L[,mean=weighted|zero][,min=M]
+    rolling:W[,min=M][,scale=vol]        Pearson over the trailing W returns
+    rank:W[,min=M][,scale=vol]           Spearman over the trailing W returns
+    ewma:hl=H[,mean=weighted|zero][,min=M][,scale=vol]
+    ewma:lambda=L[,mean=weighted|zero][,min=M][,scale=vol]
 
 ``W`` is a whole number of rows (business days), at least 3; ``M`` is the minimum count below
 which a value is NaN: the pair's common observations for ``rolling``/``rank`` (default W,
@@ -16,6 +16,12 @@ at least 2), the Kish effective count for ``ewma``. ``H > 0`` is a half-life in 
 The EWMA default minimum is ``round(H)`` but at least 2, capped at the largest effective
 count an EWMA can reach, ``floor((1 + L) / (1 - L))`` (Kish 1965 limit), so that the
 default never makes every value NaN.
+
+``scale=vol`` (default ``none``) computes the measure on the returns standardised by their
+own lagged EWMA volatility (:func:`monitor.engine.scaling.standardise`) instead of the plain
+returns; the statistical rules read it. A standardised return needs at least 20 returns in
+the 250 rows before it, so such a measure starts later than its plain twin. The canonical
+text carries ``,scale=vol`` last.
 """
 
 from __future__ import annotations
@@ -24,17 +30,19 @@ import math
 from dataclasses import dataclass, field
 from typing import Literal
 
-from monitor.errors import SpecError
+from monitor.errors import EngineInputError, SpecError
 
 MeasureKind = Literal["rolling", "rank", "ewma"]
 MeanMode = Literal["weighted", "zero"]
+Scale = Literal["none", "vol"]
 
 MIN_WINDOW = 3
 """Shortest window a rolling or rank measure accepts."""
 
 _KINDS: tuple[MeasureKind, ...] = ("rolling", "rank", "ewma")
-_WINDOW_OPTIONS = frozenset({"min"})
-_EWMA_OPTIONS = frozenset({"hl", "lambda", "mean", "min"})
+_WINDOW_OPTIONS = frozenset({"min", "scale"})
+_EWMA_OPTIONS = frozenset({"hl", "lambda", "mean", "min", "scale"})
+_SCALES: tuple[Scale, ...] = ("none", "vol")
 
 
 def _number_text(value: float) -> str:
@@ -79,6 +87,8 @@ class Measure:
         mean (the recursion of risk practice).
     spelled : {"hl", "lambda"} or None
         Which of the two the spec gave, so that :attr:`text` spells it back the same way.
+    scale : {"none", "vol"}
+        ``vol``: the measure is computed on volatility-standardised returns.
     """
 
     kind: MeasureKind
@@ -88,6 +98,7 @@ class Measure:
     lam: float | None = None
     mean: MeanMode | None = None
     spelled: Literal["hl", "lambda"] | None = field(default=None, repr=False)
+    scale: Scale = "none"
 
     @property
     def text(self) -> str:
@@ -96,9 +107,10 @@ class Measure:
             parts = [f"{self.kind}:{self.window}"]
             if self.min_count != self.window:
                 parts.append(f"min={self.min_count}")
-            return ",".join(parts)
+            return ",".join(parts + self._scale_parts())
         if self.half_life is None or self.lam is None:
-            raise ValueError("an ewma Measure needs half_life and lam; build it with parse_measure")
+            raise EngineInputError(
+                "an ewma Measure needs half_life and lam; build it with parse_measure")
         if self.spelled == "lambda":
             parts = [f"ewma:lambda={_number_text(self.lam)}"]
         else:
@@ -107,7 +119,10 @@ class Measure:
             parts.append("mean=zero")
         if self.min_count != default_ewma_min(self.half_life, self.lam):
             parts.append(f"min={self.min_count}")
-        return ",".join(parts)
+        return ",".join(parts + self._scale_parts())
+
+    def _scale_parts(self) -> list[str]:
+        return [] if self.scale == "none" else [f"scale={self.scale}"]
 
     @property
     def centred(self) -> bool:
@@ -153,6 +168,14 @@ def _options(text: str, items: list[str], allowed: frozenset[str]) -> dict[str, 
     return options
 
 
+def _parse_scale(text: str, options: dict[str, str]) -> Scale:
+    raw = options.get("scale", "none")
+    for scale in _SCALES:
+        if raw == scale:
+            return scale
+    raise _fail(text, f"scale must be 'none' or 'vol', got {raw!r}")
+
+
 def _parse_window(text: str, kind: MeasureKind, items: list[str]) -> Measure:
     window_raw = items[0].strip()
     if not window_raw or "=" in window_raw:
@@ -168,7 +191,9 @@ def _parse_window(text: str, kind: MeasureKind, items: list[str]) -> Measure:
             raise _fail(text, f"min must be >= 2, got {min_count}")
         if min_count > window:
             raise _fail(text, f"min must be <= window {window}, got {min_count}")
-    return Measure(kind=kind, window=window, min_count=min_count)
+    return Measure(
+        kind=kind, window=window, min_count=min_count, scale=_parse_scale(text, options)
+    )
 
 
 def _parse_ewma(text: str, items: list[str]) -> Measure:
@@ -216,6 +241,7 @@ def _parse_ewma(text: str, items: list[str]) -> Measure:
         lam=lam,
         mean=mean,
         spelled=spelled,
+        scale=_parse_scale(text, options),
     )
 
 

@@ -9,6 +9,12 @@ The pair matrix is cut into tiles of instruments (I x J blocks, :func:`tile`); e
 goes through a tile or a pair list, so a distributed engine can hand tiles to workers and
 put the blocks together as :func:`stream` does here.
 
+A ``scale=vol`` measure is computed on :func:`monitor.engine.scaling.standardise` of the
+rows up to ``stop``. Each standardised value is a function of its own row and the 250 rows
+before it only, and the standardisation always starts at row 0 of the matrix it is given, so
+a day's value is the same from every entry point (a full pass, a later ``start``, a
+``one_day`` on a trailing prefix): nothing depends on where the computation started.
+
 Backfill from ``start``: rolling and rank windows reach back before ``start`` as needed; an
 EWMA starts from its closed form on the history before ``start`` (see
 :mod:`monitor.engine.ewma`), so results from ``start`` equal a full pass's results.
@@ -28,7 +34,9 @@ from monitor.engine.bands import DEFAULT_LEVEL, check_level, fisher_band
 from monitor.engine.ewma import ewma_tile
 from monitor.engine.layout import BoolArray, FloatArray, Layout, PairLayout, TileLayout
 from monitor.engine.rolling import window_tile
+from monitor.engine.scaling import standardise
 from monitor.engine.spec import Measure, as_measure
+from monitor.errors import EngineInputError
 
 DEFAULT_TILE = 2048
 """Instruments per tile side when ``stream`` cuts the matrix (one tile below this)."""
@@ -92,22 +100,28 @@ def as_returns(returns: npt.ArrayLike) -> Returns2D:
     """
     matrix = np.asarray(returns, dtype=np.float64)
     if matrix.ndim != 2:
-        raise ValueError(f"returns must be a (T, N) matrix, got shape {matrix.shape}")
+        raise EngineInputError(f"returns must be a (T, N) matrix, got shape {matrix.shape}")
     if np.isinf(matrix).any():
-        raise ValueError("returns contain inf; missing returns must be NaN")
+        raise EngineInputError("returns contain inf; missing returns must be NaN")
     return matrix
 
 
 def _day_range(rows: int, start: int, stop: int | None) -> tuple[int, int]:
     stop = rows if stop is None else stop
     if not 0 <= start <= stop <= rows:
-        raise ValueError(f"need 0 <= start <= stop <= {rows}, got start={start} stop={stop}")
+        raise EngineInputError(f"need 0 <= start <= stop <= {rows}, got start={start} stop={stop}")
     return start, stop
 
 
 def _check_index(index: npt.NDArray[np.intp], columns: int, name: str) -> None:
     if index.size and (index.min() < 0 or index.max() >= columns):
-        raise ValueError(f"{name} must be instrument columns in 0..{columns - 1}")
+        raise EngineInputError(f"{name} must be instrument columns in 0..{columns - 1}")
+
+
+def _measured_returns(returns: Returns2D, measure: Measure, stop: int) -> Returns2D:
+    """What the kernels read: the returns, or for ``scale=vol`` rows 0 .. stop-1 of them
+    standardised (rows after ``stop`` are never read, so they are not standardised)."""
+    return standardise(returns[:stop]) if measure.scale == "vol" else returns
 
 
 def _arrays(
@@ -179,6 +193,7 @@ def tile(
     _check_index(layout.rows, matrix.shape[1], "rows")
     _check_index(layout.cols, matrix.shape[1], "cols")
     start, stop = _day_range(matrix.shape[0], start, stop)
+    matrix = _measured_returns(matrix, spec, stop)
     return _results(_arrays(matrix, spec, layout, start, stop, chunk), start, check_level(level))
 
 
@@ -256,6 +271,7 @@ def stream(
     spec = as_measure(measure)
     start, stop = _day_range(matrix.shape[0], start, stop)
     level = check_level(level)
+    matrix = _measured_returns(matrix, spec, stop)
     if pairs is not None:
         layout = PairLayout.of(pairs)
         _check_index(layout.left_index, matrix.shape[1], "pairs")
@@ -263,7 +279,7 @@ def stream(
         return _results(_arrays(matrix, spec, layout, start, stop, chunk), start, level)
     size = DEFAULT_TILE if tile_size is None else int(tile_size)
     if size < 1:
-        raise ValueError(f"tile_size must be >= 1, got {tile_size}")
+        raise EngineInputError(f"tile_size must be >= 1, got {tile_size}")
     return _results(_matrix_arrays(matrix, spec, start, stop, chunk, size), start, level)
 
 
@@ -295,6 +311,6 @@ def one_day(
     rows = matrix.shape[0]
     day = t + rows if t < 0 else t
     if not 0 <= day < rows:
-        raise ValueError(f"day {t} is outside the {rows} rows of returns")
+        raise EngineInputError(f"day {t} is outside the {rows} rows of returns")
     result = next(stream(matrix[: day + 1], measure, pairs=pairs, start=day, level=level))
     return result
