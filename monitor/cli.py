@@ -25,6 +25,7 @@ import pandas as pd
 
 from monitor import __version__
 from monitor.errors import ComoveError, IngestError
+from monitor.logs import console_logging
 from storage import StoreError
 
 Handler = Callable[[argparse.Namespace], int]
@@ -516,6 +517,7 @@ BENCHES = {
     "digest": "monitor.bench.digest_speed",
     "backfill": "monitor.bench.backfill_speed",
     "pages": "monitor.bench.pages_speed",
+    "alerts": "monitor.bench.alert_quality",
 }
 
 
@@ -560,6 +562,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    console_logging()
     try:
         return int(args.handler(args))
     except (ComoveError, StoreError) as exc:

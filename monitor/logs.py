@@ -69,3 +69,22 @@ def setup_logging(
         # wherever the host also configured logging.
         target.propagate = False
     return comove
+
+
+def console_logging(stream: TextIO | None = None) -> logging.Logger:
+    """Show comove's INFO messages as plain lines on `stream` (stdout by default).
+
+    What the shell commands print while they work (ingested files, backfill and demo
+    progress, the daily run's summary) goes through the "comove" logger; this is the
+    command line's view of it. A later `setup_logging` (the scheduler process) replaces it.
+    """
+    comove = logging.getLogger("comove")
+    for old in [h for h in comove.handlers if getattr(h, _OUR_HANDLER, False)]:
+        comove.removeHandler(old)
+    handler = logging.StreamHandler(stream if stream is not None else sys.stdout)
+    handler.setFormatter(logging.Formatter("%(message)s"))
+    setattr(handler, _OUR_HANDLER, True)
+    comove.addHandler(handler)
+    comove.setLevel(logging.INFO)
+    comove.propagate = False
+    return comove

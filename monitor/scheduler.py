@@ -578,11 +578,11 @@ def run_daily_command(store: Store, settings: Settings, *, once: bool, as_of: dt
     schedule = schedule_of(settings)
     if once:
         day = as_of or dt.datetime.now(schedule.zone).date()
-        run_days(store, settings, day, force=force, catch_up=catch_up, log=logger.info)
+        run_days(store, settings, day, force=force, catch_up=catch_up)
         return 0
 
     def job(day: dt.date) -> object:
-        return run_days(store, settings, day, catch_up=True, log=logger.info)
+        return run_days(store, settings, day, catch_up=True)
 
     if catch_up:
         today = dt.datetime.now(schedule.zone).date()
@@ -594,7 +594,7 @@ def run_daily_command(store: Store, settings: Settings, *, once: bool, as_of: dt
             if missed:
                 logger.info("catching up %d missed day(s): %s", len(missed),
                             ", ".join(map(str, missed)))
-                run_days(store, settings, missed[-1], catch_up=True, log=logger.info)
+                run_days(store, settings, missed[-1], catch_up=True)
     jobstore = _jobstore_url(store, settings)
     logging.getLogger("comove").info("job store: %s", jobstore.split("@")[-1])
     run_scheduler(schedule, job, jobstore_url=jobstore, logger=logger)

@@ -24,13 +24,12 @@ REPO_ROOT = Path(__file__).resolve().parents[1]
 def shared_data_dir() -> Path:
     """The outside reference data directory; the calling test FAILS if there is none.
 
-    Looked for, in order: ``../shared/data`` beside the repository root, the directory in
-    ``$COMOVE_SHARED_DATA``, ``/work/shared/data``.
+    Looked for, in order: ``../shared/data`` beside the repository root, then the
+    directory in ``$COMOVE_SHARED_DATA``.
     """
     candidates = [REPO_ROOT.parent / "shared" / "data"]
     if os.environ.get("COMOVE_SHARED_DATA"):
         candidates.append(Path(os.environ["COMOVE_SHARED_DATA"]))
-    candidates.append(Path("/work/shared/data"))
     for candidate in candidates:
         if candidate.is_dir():
             return candidate

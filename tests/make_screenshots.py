@@ -53,7 +53,7 @@ def main() -> int:
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="comove-shots-") as tmp:
         demo = args.demo or Path(tmp) / "demo"
-        run_demo(demo, log=lambda line: None)
+        run_demo(demo)
         for path in shoot(demo, HERE / "screenshots"):
             print(path)
     return 0

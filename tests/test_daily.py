@@ -142,7 +142,7 @@ def test_catch_up_runs_each_missed_day_in_order_with_its_own_digest(
         _drop(settings, closes, day)
     run_daily(store, settings, LATER_DAYS[0], environ={})
     # Missed 19, 20 and 21 December; the run for the 22nd catches up first.
-    reports = run_days(store, settings, LATER_DAYS[4], log=lambda line: None)
+    reports = run_days(store, settings, LATER_DAYS[4])
     assert [r.as_of for r in reports] == LATER_DAYS[1:5]
     assert [r.as_of for r in _daily_rows(store)] == LATER_DAYS[:5]
     with store.connect() as conn:
@@ -158,7 +158,7 @@ def test_catch_up_skips_weekends_and_holidays(
     for day in LATER_DAYS[4:6]:
         _drop(settings, closes, day)
     run_daily(store, settings, LATER_DAYS[4], send=False)
-    reports = run_days(store, settings, dt.date(2023, 12, 27), log=lambda line: None)
+    reports = run_days(store, settings, dt.date(2023, 12, 27))
     assert [r.as_of for r in reports] == [dt.date(2023, 12, 27)]
 
 

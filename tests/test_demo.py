@@ -26,7 +26,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory: pytest.TempPathFactory) -> DemoReport:
-    return run_demo(tmp_path_factory.mktemp("demo") / "desk", log=lambda line: None)
+    return run_demo(tmp_path_factory.mktemp("demo") / "desk")
 
 
 @pytest.fixture(scope="module")
@@ -144,7 +144,7 @@ def test_every_link_in_the_pages_resolves(demo: DemoReport) -> None:
 
 
 def test_a_rerun_is_idempotent(demo: DemoReport, alerts: list[alerts_store.AlertRow]) -> None:
-    again = run_demo(demo.folder, log=lambda line: None)
+    again = run_demo(demo.folder)
     assert again.files_written == 0 and again.files_ingested == 0
     assert again.evaluation.days_written == 0
     store = open_settings_store(load_settings(demo.settings_file))

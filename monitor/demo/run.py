@@ -10,9 +10,9 @@ current, and the digest and pages are rendered again from the same store.
 from __future__ import annotations
 
 import datetime as dt
+import logging
 import shutil
 import time
-from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -71,7 +71,9 @@ def write_closes(inbox: Path, closes: pd.DataFrame) -> list[Path]:
     return written
 
 
-def run_demo(folder: Path, *, log: Callable[[str], None] = print) -> DemoReport:
+def run_demo(folder: Path) -> DemoReport:
+    """Build the demo desk in `folder`; progress goes to the \"comove.demo\" logger."""
+    log = logging.getLogger("comove.demo").info
     started = time.monotonic()
     folder.mkdir(parents=True, exist_ok=True)
     settings_file = folder / "comove.toml"

@@ -5,6 +5,7 @@ missed days.
 from __future__ import annotations
 
 import datetime as dt
+import logging
 import math
 import time
 from collections.abc import Callable
@@ -23,6 +24,8 @@ from storage import Store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
 from storage import runs as runs_store
+
+LOG = logging.getLogger("comove.daily")
 
 
 @dataclass
@@ -195,7 +198,7 @@ def last_completed_daily(store: Store) -> dt.date | None:
 
 
 def run_days(store: Store, settings: Settings, as_of: dt.date, *, force: bool = False,
-             catch_up: bool = True, log: Callable[[str], None] = print) -> list[DailyReport]:
+             catch_up: bool = True) -> list[DailyReport]:
     """Run every missed scheduled day since the last completed run (each with its own
     ledger row and its own digest, oldest first), then `as_of`."""
     from monitor.calendar import business_days_between
@@ -212,7 +215,7 @@ def run_days(store: Store, settings: Settings, as_of: dt.date, *, force: bool = 
         report = run_daily(store, settings, day, force=force and day == as_of,
                            pages_dir=pages_folder(settings))
         reports.append(report)
-        log(_describe_daily(report))
+        LOG.info(_describe_daily(report))
     return reports
 
 
