@@ -28,15 +28,12 @@ from apscheduler.triggers.cron import CronTrigger
 from monitor.calendar import Schedule, as_of_for, business_days_between, parse_schedule
 from monitor.errors import ComoveError, ConfigError, JobStoreError
 from monitor.logs import setup_logging
-from monitor.scheduler import (
-    JOB_ID,
-    MISFIRE_GRACE,
+from monitor.scheduler import JOB_ID, MISFIRE_GRACE, carried_over_run_time, run_scheduler
+from monitor.trigger import (
     HolidayAwareTrigger,
-    carried_over_run_time,
     make_trigger,
     next_fire_times,
     previous_fire_time,
-    run_scheduler,
 )
 
 REPO = Path(__file__).resolve().parents[1]
