@@ -52,9 +52,9 @@ from monitor.pipeline import last_completed_daily, run_days, schedule_of
 # HolidayAwareTrigger stays importable here: job stores written before the trigger had its
 # own module pickled it as monitor.scheduler.HolidayAwareTrigger.
 from monitor.trigger import HolidayAwareTrigger, make_trigger, previous_fire_time
+from storage import Store
 
 __all__ = ["HolidayAwareTrigger", "run_daily_command", "run_scheduler"]
-from storage import Store
 
 JOB_ID = "comove-daily"
 """Id of the one job in the job store; a restart replaces it instead of adding a second."""
