@@ -17,4 +17,5 @@ Counts = npt.NDArray[np.float64]
 """Observation counts (n) or Kish effective counts (n_eff), same shape as the values."""
 
 ReturnKind = Literal["log", "simple"]
+SmtpSecurity = Literal["starttls", "tls", "none"]
 Severity = Literal["info", "warning", "critical"]

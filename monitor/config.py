@@ -18,9 +18,10 @@ import tomllib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, get_args
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
+from monitor._typing import ReturnKind, SmtpSecurity
 from monitor.errors import ConfigError
 
 DEFAULT_FILE = "comove.toml"
@@ -102,7 +103,8 @@ class DeskSettings:
 class ReturnsSettings:
     """[returns]: how closes become returns."""
 
-    kind: str = setting("log", "Return kind: log or simple.", choices=("log", "simple"))
+    kind: ReturnKind = setting("log", "Return kind: log or simple.",
+                              choices=get_args(ReturnKind))
     horizon: int = setting(
         1,
         "Days per return. Above 1 gives non-overlapping multi-day returns, which lessens the "
@@ -228,8 +230,8 @@ class DigestSettings:
     smtp_host: str = setting("localhost", "Host name of the SMTP server that relays the digest.")
     smtp_port: int = setting(587, "SMTP port (587 for starttls, 465 for tls).", kind=int,
                              check=_port)
-    security: str = setting("starttls", "starttls, tls (implicit) or none.",
-                            choices=("starttls", "tls", "none"))
+    security: SmtpSecurity = setting("starttls", "starttls, tls (implicit) or none.",
+                                     choices=get_args(SmtpSecurity))
     username: str = setting("", "SMTP login name; empty: no login.")
     password_env: str = setting(
         "", "Name of the environment variable that holds the SMTP password (a password in "

@@ -26,11 +26,11 @@ import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from email.message import EmailMessage
-from typing import Literal
 
+from monitor._typing import SmtpSecurity
 from monitor.errors import ComoveError, ConfigError
 
-Security = Literal["starttls", "tls", "none"]
+Security = SmtpSecurity
 _SECURITY = ("starttls", "tls", "none")
 
 

@@ -101,7 +101,7 @@ class _Inputs:
 def _inputs(store: Store, settings: Settings, symbols: Sequence[str], end: dt.date) -> _Inputs:
     panel = read_closes(store, symbols, None, end)
     r = settings.returns
-    returns = closes_to_returns(panel, kind=r.kind, horizon=r.horizon,  # type: ignore[arg-type]
+    returns = closes_to_returns(panel, kind=r.kind, horizon=r.horizon,
                                 fill_limit=r.fill_limit)
     without, unchanged = stale_inputs(panel)
     rows = panel.index.get_indexer(returns.index)

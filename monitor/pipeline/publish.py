@@ -106,7 +106,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
     plan = build_plan(settings, symbols)
     panel = read_closes(store, symbols, None, as_of)
     r = settings.returns
-    returns = closes_to_returns(panel, kind=r.kind, horizon=r.horizon,  # type: ignore[arg-type]
+    returns = closes_to_returns(panel, kind=r.kind, horizon=r.horizon,
                                 fill_limit=r.fill_limit)
     if returns.empty:
         raise ComoveError(f"no returns on or before {as_of}: ingest closes first")
@@ -244,7 +244,7 @@ def send_digest(
                                          message=raw, now=now)
     message = _parse_eml(raw)
     smtp = SmtpSettings(host=d.smtp_host, port=d.smtp_port,
-                        security=d.security,  # type: ignore[arg-type]
+                        security=d.security,
                         username=d.username or None, password_env=d.password_env or None)
     context = None
     if d.ca_file:

@@ -58,7 +58,7 @@ def read_returns(store: Store, settings: Settings, symbols: Sequence[str] | None
     """Aligned returns from the store, as the settings' [returns] section defines them."""
     panel = read_closes(store, symbols, start, end)
     r = settings.returns
-    return closes_to_returns(panel, kind=r.kind, horizon=r.horizon,  # type: ignore[arg-type]
+    return closes_to_returns(panel, kind=r.kind, horizon=r.horizon,
                              fill_limit=r.fill_limit)
 
 
