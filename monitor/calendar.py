@@ -274,3 +274,22 @@ def business_days_between(schedule: Schedule, after: dt.date, through: dt.date) 
     """
     days = (after + dt.timedelta(days=i) for i in range(1, (through - after).days + 1))
     return [day for day in days if schedule.is_run_date(day)]
+
+
+def run_dates_ending(schedule: Schedule, end: dt.date, count: int) -> list[dt.date]:
+    """The `count` run dates of `schedule` up to and including `end`, increasing.
+
+    Raises
+    ------
+    ConfigError
+        `count` below 0.
+    """
+    if count < 0:
+        raise ConfigError(f"count: {count!r} is not a number of days >= 0")
+    days: list[dt.date] = []
+    day = end
+    while len(days) < count:
+        if schedule.is_run_date(day):
+            days.append(day)
+        day -= dt.timedelta(days=1)
+    return days[::-1]

@@ -15,11 +15,12 @@ import json
 import sys
 import time
 from collections.abc import Sequence
-from datetime import UTC, date, datetime, timedelta
+from datetime import UTC, date, datetime
 
 import numpy as np
 
 from monitor import __version__
+from monitor.calendar import Schedule, run_dates_ending
 from monitor.digest.context import (
     AlertHistory,
     AlertView,
@@ -47,15 +48,9 @@ _GROUPS = (
     ("Rusk Transport", "RSK"),
 )
 
+WEEKDAYS = Schedule()
+"""Monday to Friday, no holidays: the synthetic calendar."""
 
-def _business_days(end: date, count: int) -> list[date]:
-    days: list[date] = []
-    day = end
-    while len(days) < count:
-        if day.weekday() < 5:
-            days.append(day)
-        day -= timedelta(days=1)
-    return days[::-1]
 
 
 def synthetic_context(
@@ -82,7 +77,7 @@ def synthetic_context(
     """
     rng = np.random.default_rng(seed)
     as_of = date(2026, 3, 5)
-    days = _business_days(as_of, 252)
+    days = run_dates_ending(WEEKDAYS, as_of, 252)
     per_group = max(1, instruments // groups)
     members: list[list[Instrument]] = []
     heatmaps = []

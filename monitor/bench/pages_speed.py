@@ -26,6 +26,7 @@ from typing import cast
 import numpy as np
 
 from monitor import __version__
+from monitor.calendar import Schedule, run_dates_ending
 from monitor.pages.context import (
     AckView,
     AlertSpan,
@@ -70,16 +71,9 @@ _RULES = (
     RulePage("stale closes", "stale", "info", "", (("days", "3"),)),
 )
 
+WEEKDAYS = Schedule()
+"""Monday to Friday, no holidays: the synthetic calendar."""
 
-def business_days(end: date, count: int) -> list[date]:
-    """The `count` weekdays up to and including `end`, ascending."""
-    days: list[date] = []
-    day = end
-    while len(days) < count:
-        if day.weekday() < 5:
-            days.append(day)
-        day -= timedelta(days=1)
-    return days[::-1]
 
 
 def _history(
@@ -120,7 +114,7 @@ def synthetic_context(
     """
     rng = np.random.default_rng(seed)
     as_of = date(2026, 3, 5)
-    calendar = business_days(as_of, days)
+    calendar = run_dates_ending(WEEKDAYS, as_of, days)
     per_group = max(2, math.ceil(math.sqrt(2 * pairs / len(_GROUPS))) + 2)
     instruments: list[InstrumentView] = []
     for group, prefix, house in _GROUPS:
