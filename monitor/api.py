@@ -27,7 +27,8 @@ import pandas as pd
 
 from monitor._typing import ReturnKind
 from monitor.alerts.book import AlertBook, AlertEvent
-from monitor.alerts.replay import make_plan, replay, stale_inputs
+from monitor.alerts.replay import make_plan, replay
+from monitor.data.quality import stale_inputs
 from monitor.data.returns import closes_to_returns
 from monitor.engine import DEFAULT_LEVEL, Measure, fisher_band, one_day, parse_measure, stream
 from monitor.engine.bands import check_level

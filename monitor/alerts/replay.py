@@ -28,7 +28,6 @@ from typing import Any
 
 import numpy as np
 import numpy.typing as npt
-import pandas as pd
 
 from monitor.alerts.book import AlertBook, AlertEvent
 from monitor.engine import stream
@@ -99,30 +98,6 @@ def scope_hash(parts: Mapping[str, Any]) -> str:
     symbols): saved state is only reused under the same hash."""
     text = json.dumps(parts, sort_keys=True, default=str, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
-
-
-def stale_inputs(closes: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
-    """Per date and instrument: rows since the last close, and rows the close has not changed.
-
-    Parameters
-    ----------
-    closes : DataFrame (T, N), NaN where there is no close.
-
-    Returns
-    -------
-    days_without_close, days_unchanged : float arrays (T, N); NaN before an instrument's
-        first close. A date is a row of the panel (a day on which some instrument closed).
-    """
-    values = closes.to_numpy(dtype=np.float64)
-    rows = np.arange(values.shape[0], dtype=np.float64)[:, None]
-    has = ~np.isnan(values)
-    last_close = np.where(has, rows, np.nan)
-    last_close = pd.DataFrame(last_close).ffill().to_numpy()
-    filled = pd.DataFrame(values).ffill().to_numpy()
-    previous = np.vstack([np.full((1, values.shape[1]), np.nan), filled[:-1]])
-    changed = has & ~(filled == previous)
-    last_change = pd.DataFrame(np.where(changed, rows, np.nan)).ffill().to_numpy()
-    return rows - last_close, rows - last_change
 
 
 class PairDay:

@@ -265,38 +265,3 @@ def _validate(
     rows = good[["symbol", "date", "close", "source", "line"]].reset_index(drop=True)
     return ParsedFile(name=name, sha256=sha, layout=chosen, rows_read=rows_read, rows=rows,
                       problems=problems, rows_rejected=len({int(line[i]) for i in bad}))
-
-
-def find_suspects(existing: pd.DataFrame, new: pd.DataFrame, threshold: float) -> pd.DataFrame:
-    """Closes whose daily |log return| against the neighbouring close exceeds `threshold`.
-
-    `existing` and `new` have columns symbol, date, close; `new` wins where both have a
-    date. Returns the suspect rows of `new` (symbol, date, close, previous_close,
-    log_return); a big move is accepted, only reported, since one bad tick distorts a
-    correlation for a whole window (common practice).
-    """
-    columns = ["symbol", "date", "close", "previous_close", "log_return"]
-    if new.empty:
-        return pd.DataFrame(columns=columns)
-    merged = pd.concat(
-        [existing[["symbol", "date", "close"]].assign(is_new=False),
-         new[["symbol", "date", "close"]].assign(is_new=True)],
-        ignore_index=True,
-    )
-    merged = merged.sort_values(["symbol", "date", "is_new"]).drop_duplicates(
-        ["symbol", "date"], keep="last"
-    )
-    prev = merged.groupby("symbol", sort=False)["close"].shift(1)
-    log_ret = np.log(merged["close"].to_numpy() / prev.to_numpy())
-    big = np.abs(log_ret) > threshold
-    # Report a move on the new close, or on the existing close right after a new one.
-    pick = big & (merged["is_new"].to_numpy() | _after_new(merged))
-    out = merged.loc[pick, ["symbol", "date", "close"]].copy()
-    out["previous_close"] = prev.to_numpy()[pick]
-    out["log_return"] = log_ret[pick]
-    return out.reset_index(drop=True)[columns]
-
-
-def _after_new(merged: pd.DataFrame) -> np.ndarray:
-    prev_new = merged.groupby("symbol", sort=False)["is_new"].shift(1)
-    return prev_new.fillna(False).to_numpy().astype(bool)

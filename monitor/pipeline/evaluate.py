@@ -23,9 +23,9 @@ from monitor.alerts.replay import (
     make_plan,
     replay,
     scope_hash,
-    stale_inputs,
 )
 from monitor.config import Settings
+from monitor.data.quality import stale_inputs
 from monitor.data.returns import closes_to_returns
 from monitor.errors import ComoveError, ConfigError
 from monitor.pipeline.lease import evaluation_lease

@@ -11,7 +11,8 @@ from pathlib import Path
 import pandas as pd
 
 from monitor.config import Settings
-from monitor.data.parse import FileFormat, find_suspects, parse_closes, read_bytes
+from monitor.data.parse import FileFormat, parse_closes, read_bytes
+from monitor.data.quality import find_suspects
 from monitor.errors import IngestError
 from monitor.pipeline.store import desk_today, instrument_rows
 from storage import Store

@@ -14,11 +14,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from monitor.alerts.replay import (
-    stale_inputs,
-)
 from monitor.calendar import Schedule
 from monitor.config import Settings
+from monitor.data.quality import stale_inputs
 from monitor.data.returns import closes_to_returns
 from monitor.errors import ComoveError, ConfigError
 from monitor.pipeline.evaluate import build_plan

@@ -1,0 +1,66 @@
+"""Data quality of a closes panel: suspect ticks, and how long each close has been missing
+or unchanged (the inputs of the `stale` rule). Pure: frames in, frames and arrays out."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+
+def find_suspects(existing: pd.DataFrame, new: pd.DataFrame, threshold: float) -> pd.DataFrame:
+    """Closes whose daily |log return| against the neighbouring close exceeds `threshold`.
+
+    `existing` and `new` have columns symbol, date, close; `new` wins where both have a
+    date. Returns the suspect rows of `new` (symbol, date, close, previous_close,
+    log_return); a big move is accepted, only reported, since one bad tick distorts a
+    correlation for a whole window (common practice).
+    """
+    columns = ["symbol", "date", "close", "previous_close", "log_return"]
+    if new.empty:
+        return pd.DataFrame(columns=columns)
+    merged = pd.concat(
+        [existing[["symbol", "date", "close"]].assign(is_new=False),
+         new[["symbol", "date", "close"]].assign(is_new=True)],
+        ignore_index=True,
+    )
+    merged = merged.sort_values(["symbol", "date", "is_new"]).drop_duplicates(
+        ["symbol", "date"], keep="last"
+    )
+    prev = merged.groupby("symbol", sort=False)["close"].shift(1)
+    log_ret = np.log(merged["close"].to_numpy() / prev.to_numpy())
+    big = np.abs(log_ret) > threshold
+    # Report a move on the new close, or on the existing close right after a new one.
+    pick = big & (merged["is_new"].to_numpy() | _after_new(merged))
+    out = merged.loc[pick, ["symbol", "date", "close"]].copy()
+    out["previous_close"] = prev.to_numpy()[pick]
+    out["log_return"] = log_ret[pick]
+    return out.reset_index(drop=True)[columns]
+
+
+def _after_new(merged: pd.DataFrame) -> np.ndarray:
+    prev_new = merged.groupby("symbol", sort=False)["is_new"].shift(1)
+    return prev_new.fillna(False).to_numpy().astype(bool)
+
+
+def stale_inputs(closes: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Per date and instrument: rows since the last close, and rows the close has not changed.
+
+    Parameters
+    ----------
+    closes : DataFrame (T, N), NaN where there is no close.
+
+    Returns
+    -------
+    days_without_close, days_unchanged : float arrays (T, N); NaN before an instrument's
+        first close. A date is a row of the panel (a day on which some instrument closed).
+    """
+    values = closes.to_numpy(dtype=np.float64)
+    rows = np.arange(values.shape[0], dtype=np.float64)[:, None]
+    has = ~np.isnan(values)
+    last_close = np.where(has, rows, np.nan)
+    last_close = pd.DataFrame(last_close).ffill().to_numpy()
+    filled = pd.DataFrame(values).ffill().to_numpy()
+    previous = np.vstack([np.full((1, values.shape[1]), np.nan), filled[:-1]])
+    changed = has & ~(filled == previous)
+    last_change = pd.DataFrame(np.where(changed, rows, np.nan)).ffill().to_numpy()
+    return rows - last_close, rows - last_change
