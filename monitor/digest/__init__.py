@@ -5,6 +5,7 @@ Code outside this package imports from here; the modules inside are free to move
 - `build`: the context from the pipeline's plain data (engine calls only);
 - `context`: the context dataclasses and their checks;
 - `order`: the order in which alerts, changes and data issues are shown;
+- `flood`: which alerts of a long list are shown in full, and the summary of the rest;
 - `footer`: the cautions and the noise band they quote;
 - `figures`: which charts and matrix tables the digest carries, and their names;
 - `png_charts`: drawing the charts;

@@ -247,7 +247,19 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
         drivers=tuple(driver_views), history=history if bucket == "new" else None,
         observations=_finite_or_none(n),
         reminder=facts.reminded_today,
+        groups=_alert_groups(a_text, b_text, rule, inputs.groups),
+        method_note=(rule.method_note() or "") if rule is not None else "",
     )
+
+
+def _alert_groups(a_text: str, b_text: str, rule: Rule | None,
+                  groups: Mapping[str, Sequence[str]]) -> tuple[str, ...]:
+    """The desk's groups of an alert's target, in the desk's group order."""
+    if not b_text and (a_text in groups or isinstance(getattr(rule, "targets", None),
+                                                      GroupTargets)):
+        return (a_text,) if a_text in groups else ()
+    members = {a_text, b_text} - {""}
+    return tuple(name for name, symbols in groups.items() if members & set(symbols))
 
 
 def _movers(inputs: DigestInputs, matrix: np.ndarray, symbols: list[str], t: int

@@ -165,6 +165,13 @@ class AlertView:
     reminder : bool
         True on the alert's reminder days (every `remind_every` business days while it is
         open and unacknowledged); shown as "reminder", the other days as plain "open".
+    groups : tuple of str
+        The desk's groups of the alert's instruments (one for a pair within a group, two
+        for a pair across groups, the group itself for a group target); empty when none.
+        Used by the flood summary's table by rule and group.
+    method_note : str
+        One sentence from the rule (`Rule.method_note`): which variance and which
+        false-alarm setting stand behind the alert; "" for rules on the desk's own levels.
     """
 
     id: int | str
@@ -195,13 +202,15 @@ class AlertView:
     history: AlertHistory | None = None
     observations: float | None = None
     reminder: bool = False
+    groups: Sequence[str] = ()
+    method_note: str = ""
 
     def __post_init__(self) -> None:
         if self.severity not in SEVERITY_RANK:
             raise ConfigError(
                 f"severity: {self.severity!r} is not one of critical, warning, info"
             )
-        _tupled(self, "drivers")
+        _tupled(self, "drivers", "groups")
 
     @property
     def pair(self) -> str:
@@ -440,6 +449,10 @@ class DigestContext:
         Measures, observation counts, return kind, horizon, confidence level.
     version : str
         comove's version.
+    pages_url : str
+        Address of the history pages' folder (ending in "/"), when the desk publishes
+        them somewhere a reader can open; "" when unknown, and a summarised list then
+        names the history pages' index by its path instead of linking it.
     """
 
     desk: str
@@ -458,6 +471,7 @@ class DigestContext:
     baskets: Sequence[BasketView] = ()
     data_quality: Sequence[DataIssueView] = ()
     heatmaps: Sequence[HeatmapView] = ()
+    pages_url: str = ""
 
     def __post_init__(self) -> None:
         _tupled(

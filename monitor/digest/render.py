@@ -3,16 +3,19 @@ its plain-text part, from a `DigestContext`.
 
 Pure apart from Jinja and matplotlib: no clock (the times shown are passed in), no store,
 no disk. The figures come from `monitor.digest.figures`, the order of every list from
-`monitor.digest.order`, the footer's cautions from `monitor.digest.footer`.
+`monitor.digest.order`, the footer's cautions from `monitor.digest.footer`, and what a
+long list leaves out from `monitor.digest.flood`.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
 
 from monitor.digest import png_charts
-from monitor.digest.context import DigestContext
+from monitor.digest.context import AlertView, DigestContext
 from monitor.digest.figures import build_figures
+from monitor.digest.flood import SCREENFUL, summarise
 from monitor.digest.footer import cautions
 from monitor.digest.order import alert_sort_key, issue_sort_key, mover_sort_key
 from monitor.digest.rendered import RenderedDigest
@@ -36,6 +39,17 @@ def digest_subject(ctx: DigestContext) -> str:
     return _one_line(subject)
 
 
+def method_notes(*lists: Sequence[AlertView]) -> list[tuple[str, str]]:
+    """(rule name, method note) for each rule of the given alerts that has a note, once
+    each, in the order the rules first appear."""
+    notes: dict[str, str] = {}
+    for alerts in lists:
+        for alert in alerts:
+            if alert.method_note:
+                notes.setdefault(alert.rule_name, alert.method_note)
+    return list(notes.items())
+
+
 def render_digest(ctx: DigestContext) -> RenderedDigest:
     """Render one evening's digest to HTML (two variants), plain text and PNG charts.
 
@@ -44,7 +58,10 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
     ctx : DigestContext
         What to show. Lists are re-ordered here: alerts most severe first
         (`alert_sort_key`), movers by largest |change| (unknown changes last), data
-        issues by kind.
+        issues by kind. A list of new or still-open alerts longer than
+        `monitor.digest.flood.SCREENFUL` shows its strongest alerts in full and a summary
+        by rule and group for the rest; charts are drawn for the shown alerts only, so
+        the email does not grow with the flood.
 
     Returns
     -------
@@ -52,13 +69,20 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
         Subject, HTML for files and for email, text, images and attachments.
     """
     new_alerts = sorted(ctx.new_alerts, key=alert_sort_key)
-    images, by_key, tables, attachments = build_figures(ctx, new_alerts)
+    continuing = sorted(ctx.continuing, key=alert_sort_key)
+    new_list = summarise(new_alerts, opened=ctx.as_of)
+    continuing_list = summarise(continuing, state="open")
+    images, by_key, tables, attachments = build_figures(ctx, new_list.shown)
     environment = make_environment()
     common: dict[str, Any] = {
         "ctx": ctx,
         "subject": digest_subject(ctx),
         "new_alerts": new_alerts,
-        "continuing": sorted(ctx.continuing, key=alert_sort_key),
+        "continuing": continuing,
+        "new_list": new_list,
+        "continuing_list": continuing_list,
+        "screenful": SCREENFUL,
+        "method_notes": method_notes(new_alerts, continuing, ctx.acknowledged, ctx.cleared),
         "acknowledged": sorted(ctx.acknowledged, key=alert_sort_key),
         "cleared": sorted(ctx.cleared, key=alert_sort_key),
         "movers": sorted(ctx.movers, key=mover_sort_key),
@@ -85,4 +109,4 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
     )
 
 
-__all__ = ["digest_subject", "render_digest"]
+__all__ = ["digest_subject", "method_notes", "render_digest"]

@@ -137,6 +137,8 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
             opened=alert.opened_on, cleared=alert.cleared_on, peak=_num(alert.peak_value),
             acknowledged_by=alert.acknowledged_by, groups=groups,
             measure=",".join(rule.measures()) if rule is not None else "",
+            p_value=_opening_p(events_by_alert.get(int(alert.id), ())),
+            excess=_excess(alert.opened_value, alert.level),
         ))
         by_target.setdefault(alert.target, []).append(alert)
 
@@ -199,7 +201,8 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
                  measure=",".join(rule.measures()),
                  parameters=[(k, _text(v)) for k, v in tables.get(rule.name, {}).items()
                              if k not in ("name", "kind", "description")],
-                 description=str(tables.get(rule.name, {}).get("description", rule.summary)))
+                 description=str(tables.get(rule.name, {}).get("description", rule.summary)),
+                 method_note=rule.method_note() or "")
         for rule in inputs.rules
     ]
     runs = [
@@ -218,6 +221,21 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
         alerts=summaries, pairs=pairs, rules=rule_pages, runs=runs, digests=inputs.digests,
         groups=dict(group_of), targets=targets,
     )
+
+
+def _opening_p(events: Sequence[Mapping[str, Any]]) -> float | None:
+    """The p-value of an alert's opening event, the evidence the flood summary ranks by."""
+    for event in events:
+        if event.get("event") == "opened":
+            return _opt(event.get("p"))
+    return None
+
+
+def _excess(value: Any, level: Any) -> float:
+    """|value - level| of an opening, NaN when either is unknown."""
+    if value is None or level is None:
+        return math.nan
+    return abs(float(value) - float(level))
 
 
 def _declared_pairs(tables: Sequence[Mapping[str, Any]], name: str) -> bool:

@@ -131,6 +131,12 @@ class AlertSummary:
         `SiteContext.groups`".
     measure : str
         The measure spec the rule watches, "" when the rule has none.
+    p_value : float or None
+        Evidence of a statistical alert on its first day: the p-value of the opening
+        event; None when the rule gives none (or NaN was stored).
+    excess : float
+        Evidence of a level alert on its first day: |value - level| of the opening;
+        NaN when unknown or the rule has no level.
 
     Notes
     -----
@@ -152,6 +158,8 @@ class AlertSummary:
     acknowledged_by: str | None = None
     groups: Sequence[str] = ()
     measure: str = ""
+    p_value: float | None = None
+    excess: float = math.nan
 
     def __post_init__(self) -> None:
         tuple_fields(self, "target", "groups")
@@ -436,6 +444,9 @@ class RulePage:
         Its settings as configured, as (key, value) text, in the order to show them.
     description : str
         A line of the desk's own words about it; "" when none.
+    method_note : str
+        One sentence from the rule (`Rule.method_note`): which variance and which
+        false-alarm setting stand behind its alerts; "" for rules on the desk's own levels.
 
     Notes
     -----
@@ -448,6 +459,7 @@ class RulePage:
     measure: str = ""
     parameters: Sequence[tuple[str, str]] = ()
     description: str = ""
+    method_note: str = ""
 
     def __post_init__(self) -> None:
         object.__setattr__(

@@ -45,11 +45,13 @@ from monitor.pages.paths import (
     target_page_path,
 )
 from monitor.pages.views import (
+    SCREENFUL,
     AlertRow,
     HistoryPageView,
     alert_order,
     alert_row,
     event_order,
+    flood_days,
     id_order,
     measure_block,
 )
@@ -92,6 +94,10 @@ class _SiteRenderer:
         self.group_names = sorted(
             (set(ctx.groups.values()) | {g for row in self.rows for g in row.groups}) - {""}
         )
+        self.floods = flood_days(self.rows)
+        # The last configuration of a rule name wins, as on the rule pages.
+        self.method_notes = {rule.name: rule.method_note for rule in ctx.rules
+                             if rule.method_note}
 
     # Each path may come from one thing only; a clash would mean two pages share a file.
     def _claim(self, path: str, owner: str) -> None:
@@ -120,7 +126,8 @@ class _SiteRenderer:
             self._add(asset, f"asset {asset}", (pages_dir / asset).read_bytes())
         self._add("index.html", "index", self.render(
             "index.html", "", "alerts", rows=self.rows, group_names=self.group_names,
-            rule_names=sorted({row.alert.rule_name for row in self.rows}),
+            rule_names=sorted({row.alert.rule_name for row in self.rows}), floods=self.floods,
+            screenful=SCREENFUL,
         ))
         self._rule_pages()
         self._history_pages()
@@ -156,6 +163,7 @@ class _SiteRenderer:
             self._add(rule_page_path(rule.name), f"rule {rule.name!r}", self.render(
                 "rule.html", "../", "rules", rule=rule, configured=configured,
                 rows=by_rule.get(rule.name, []),
+                floods=[f for f in self.floods if f.rule_name == rule.name],
             ))
 
     def _history_pages(self) -> None:
@@ -245,7 +253,11 @@ class _SiteRenderer:
             drivers=tuple(sorted(drivers, key=lambda d: (d.day, id_order(d.alert_id)))),
             symbols=symbols, alert_ids=frozenset(str(row.alert.id) for row in rows),
         )
-        self._add(path, owner, self.render("history.html", "../", "alerts", page=view))
+        notes = [(name, self.method_notes[name])
+                 for name in dict.fromkeys(row.alert.rule_name for row in rows)
+                 if name in self.method_notes]
+        self._add(path, owner, self.render("history.html", "../", "alerts", page=view,
+                                           method_notes=notes))
 
 
 def render_site(ctx: SiteContext, *, workers: int = 1) -> dict[str, bytes]:

@@ -9,10 +9,12 @@ ready to render, and the orders rows are shown in. It is pure: no Jinja, no disk
 from __future__ import annotations
 
 import json
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date
 from typing import Any
+from urllib.parse import urlencode
 
 import numpy as np
 
@@ -33,6 +35,14 @@ from monitor.templating import format_corr, format_date
 
 MONTH_END_ROWS = 400
 """Most month-end rows printed under a chart (more than 33 years of history)."""
+
+SCREENFUL = 25
+"""Most alerts of one rule on one day listed without a summary line. The same number as
+the digest's `monitor.digest.flood.SCREENFUL` (a test holds them equal); kept here so the
+pages do not import the digest package."""
+
+FLOOD_STRONGEST = 3
+"""Alerts named in a busy day's summary line before "and N more"."""
 
 
 @dataclass(frozen=True)
@@ -175,6 +185,82 @@ def measure_block(
 
 
 
+@dataclass(frozen=True)
+class FloodDay:
+    """A day on which one rule opened more alerts than a screenful, summarised in a line.
+
+    Attributes
+    ----------
+    rule_name : str
+        The rule.
+    day : date
+        The day the alerts opened.
+    count : int
+        Alerts the rule opened that day (withdrawn ones included: the index lists them).
+    strongest : tuple of AlertRow
+        The `FLOOD_STRONGEST` with the strongest evidence (`evidence_order`).
+    more : int
+        The others ("and N more").
+    link : str
+        The alert index filtered to that rule and day, site-relative
+        (``index.html#rule=...&opened=...``, read by site.js).
+    """
+
+    rule_name: str
+    day: date
+    count: int
+    strongest: tuple[AlertRow, ...]
+    more: int
+    link: str
+
+
+def evidence_order(alert: AlertSummary) -> tuple[Any, ...]:
+    """Sort key putting the strongest evidence first, as the digest does
+    (`monitor.digest.order.alert_sort_key`): severity, then the opening's p-value
+    (smallest first), then how far past its level it opened (largest first), then id."""
+    p = alert.p_value if alert.p_value is not None and math.isfinite(alert.p_value) \
+        else math.inf
+    excess = -alert.excess if math.isfinite(alert.excess) else math.inf
+    return (SEVERITIES.index(alert.severity), p, excess, id_order(alert.id))
+
+
+def index_filter(rule_name: str, day: date) -> str:
+    """The alert index filtered to one rule and opening day, site-relative."""
+    return "index.html#" + urlencode({"rule": rule_name, "opened": day.isoformat()})
+
+
+def flood_days(rows: Sequence[AlertRow], *, limit: int = SCREENFUL) -> list[FloodDay]:
+    """The (rule, day) pairs with more than `limit` alerts opened, newest day first.
+
+    Parameters
+    ----------
+    rows : sequence of AlertRow
+        Alert rows in any order.
+    limit : int
+        A day with this many alerts of one rule or fewer is not summarised.
+
+    Returns
+    -------
+    list of FloodDay
+        Newest day first, then most alerts first, then by rule name.
+    """
+    by_day: dict[tuple[str, date], list[AlertRow]] = {}
+    for row in rows:
+        by_day.setdefault((row.alert.rule_name, row.alert.opened), []).append(row)
+    days = []
+    for (rule, day), found in by_day.items():
+        if len(found) <= limit:
+            continue
+        ranked = sorted(found, key=lambda r: evidence_order(r.alert))
+        days.append(FloodDay(
+            rule_name=rule, day=day, count=len(found),
+            strongest=tuple(ranked[:FLOOD_STRONGEST]),
+            more=len(found) - min(len(found), FLOOD_STRONGEST),
+            link=index_filter(rule, day),
+        ))
+    return sorted(days, key=lambda f: (-f.day.toordinal(), -f.count, f.rule_name))
+
+
 def event_order(event: EventView) -> tuple[Any, ...]:
     """Sort key of the event tables: by day, alert, then opened / continuing / cleared."""
     return (event.day, id_order(event.alert_id), EVENT_KINDS.index(event.kind))
@@ -228,8 +314,11 @@ def alert_row(
 
 
 __all__ = [
+    "FLOOD_STRONGEST",
     "MONTH_END_ROWS",
+    "SCREENFUL",
     "AlertRow",
+    "FloodDay",
     "HistoryPageView",
     "MeasureBlock",
     "alert_groups",
@@ -237,6 +326,9 @@ __all__ = [
     "alert_order",
     "alert_row",
     "event_order",
+    "evidence_order",
+    "flood_days",
     "id_order",
+    "index_filter",
     "measure_block",
 ]

@@ -3,15 +3,16 @@
  * Progressive enhancement only: every table is complete in the HTML, and this script
  * adds (1) a sort button to each header of a table with class "sortable" and (2) the
  * filter form of the alert index, which stays hidden when the script does not run.
- * Nothing is fetched: the rows carry their own data (data-state, data-rule, data-groups,
- * data-search), so the pages work opened straight from disk (file://) as well as served.
- * A filter can be given in the address: index.html?q=KLV&state=open or index.html#q=KLV
- * (the part after # wins); changing the form writes it back after the #.
+ * Nothing is fetched: the rows carry their own data (data-state, data-rule, data-opened,
+ * data-groups, data-search), so the pages work opened straight from disk (file://) as well
+ * as served. A filter can be given in the address: index.html?q=KLV&state=open or
+ * index.html#rule=R&opened=2026-03-05 (the part after # wins); changing the form writes it
+ * back after the #. The busy-day summaries link to such addresses.
  */
 (function () {
   "use strict";
 
-  var FILTER_KEYS = ["q", "state", "rule", "group"];
+  var FILTER_KEYS = ["q", "state", "rule", "group", "opened"];
 
   function cellKey(row, index) {
     var cell = row.cells[index];
@@ -154,6 +155,7 @@
         match = match && (!wanted.state || row.getAttribute("data-state") === wanted.state);
         match = match && (!wanted.rule || row.getAttribute("data-rule") === wanted.rule);
         match = match && (!wanted.group || rowGroups(row).indexOf(wanted.group) !== -1);
+        match = match && (!wanted.opened || row.getAttribute("data-opened") === wanted.opened);
         row.hidden = !match;
         if (match) {
           shown += 1;
