@@ -203,7 +203,7 @@ def test_unknown_kind_suggests_the_nearest() -> None:
 def test_missing_kind_lists_the_known_kinds() -> None:
     message = error_of({"name": "t"})
     assert message == (
-        "rules[0] (t).kind: missing required key (one of basket, jump, level, shift, sign, stale)"
+        "rules[0] (t).kind: missing required key (one of basket, cusum, jump, level, shift, sign, stale)"
     )
 
 
@@ -387,7 +387,7 @@ def test_each_kind_reports_its_own_bad_settings(table: dict[str, object], expect
 def test_every_kind_documents_each_parameter() -> None:
     documented = rule_parameters()
     assert set(documented) == set(RULE_KINDS) == {
-        "level", "shift", "jump", "sign", "basket", "stale"
+        "level", "shift", "jump", "sign", "basket", "stale", "cusum"
     }
     for kind, params in documented.items():
         names = [param.name for param in params]

@@ -25,7 +25,7 @@ SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
 
 COMMON_PARAMETERS: tuple[Param, ...] = (
     Param("name", "str", "Unique name (letters, digits, '-', '_', '.').", required=True),
-    Param("kind", "str", "level, shift, jump, sign, basket or stale.", required=True),
+    Param("kind", "str", "level, shift, jump, sign, basket, stale or cusum.", required=True),
     Param("severity", "str", "How urgent its alerts are.", default="warning", choices=SEVERITIES),
     Param(
         "remind_every",

@@ -14,6 +14,7 @@ import numpy as np
 from monitor.errors import ConfigError
 from monitor.rules.base import SEVERITIES, Rule
 from monitor.rules.basket import BasketRule
+from monitor.rules.cusum import CusumRule
 from monitor.rules.jump import JumpRule
 from monitor.rules.level import LevelRule
 from monitor.rules.params import Param, TableReader, suggestion
@@ -23,7 +24,8 @@ from monitor.rules.stale import StaleRule
 from monitor.rules.targets import IntArray, Universe
 
 RULE_KINDS: dict[str, type[Rule]] = {
-    rule.kind: rule for rule in (LevelRule, ShiftRule, JumpRule, SignRule, BasketRule, StaleRule)
+    rule.kind: rule for rule in (LevelRule, ShiftRule, JumpRule, SignRule, BasketRule, StaleRule,
+                                  CusumRule)
 }
 """Config word -> rule class."""
 
