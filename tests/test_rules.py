@@ -472,7 +472,7 @@ class BandlessMeasure:
 
 def test_rules_read_the_band_only_when_they_need_it() -> None:
     plain = one(kind="level", above=0.7, pairs=["KLV/ORMA", "KLV/VESK"])
-    confident = one(kind="level", above=0.7, confident=True, pairs=["KLV/ORMA", "KLV/VESK"])
+    confident = one(kind="level", above=0.7, confident=True, variance="fisher", pairs=["KLV/ORMA", "KLV/VESK"])
     quiet = {"rolling:63": BandlessMeasure([0.2, 0.3])}
     book = AlertBook()
     assert book.step(plain, plain.evaluate(day_for(plain, quiet)), START) == []
@@ -523,7 +523,7 @@ def test_level_below_mirrors_above() -> None:
 
 
 def test_confident_level_opens_only_when_the_band_is_beyond_the_level() -> None:
-    rule = one(kind="level", above=0.7, confident=True, pairs=["KLV/ORMA"])
+    rule = one(kind="level", above=0.7, confident=True, variance="fisher", pairs=["KLV/ORMA"])
     values = [0.80, 0.80, 0.80]
     lows = [0.65, 0.69, 0.72]
     days = [
@@ -536,7 +536,7 @@ def test_confident_level_opens_only_when_the_band_is_beyond_the_level() -> None:
 
 
 def test_confident_below_uses_the_band_high() -> None:
-    rule = one(kind="level", below=-0.5, confident=True, pairs=["KLV/ORMA"])
+    rule = one(kind="level", below=-0.5, confident=True, variance="fisher", pairs=["KLV/ORMA"])
     inside = rule.evaluate(day_for(rule, {"rolling:63": measure_day([-0.7], high=[-0.45])}))
     beyond = rule.evaluate(day_for(rule, {"rolling:63": measure_day([-0.7], high=[-0.55])}))
     assert not inside.breach[0] and beyond.breach[0]
@@ -684,7 +684,7 @@ def test_jump_opens_on_the_move_and_clears_when_the_move_fades() -> None:
 
 
 def test_sign_opens_when_the_band_is_wholly_on_the_other_side_and_clears_at_zero() -> None:
-    rule = one(kind="sign", expected="positive", pairs=["KLV/ORMA"])
+    rule = one(kind="sign", expected="positive", variance="fisher", pairs=["KLV/ORMA"])
     bands = [(0.1, 0.3), (-0.3, 0.05), (-0.45, -0.05), (-0.5, -0.1), (-0.2, 0.0), (0.1, 0.4)]
     days = [
         day_for(rule, {"rolling:63": measure_day([(lo + hi) / 2], low=[lo], high=[hi])}, offset=k)
@@ -694,7 +694,7 @@ def test_sign_opens_when_the_band_is_wholly_on_the_other_side_and_clears_at_zero
 
 
 def test_sign_expected_negative_mirrors_positive() -> None:
-    rule = one(kind="sign", expected="negative", pairs=["TEZ10/LUMA5", "KLV/ORMA"])
+    rule = one(kind="sign", expected="negative", variance="fisher", pairs=["TEZ10/LUMA5", "KLV/ORMA"])
     condition = rule.evaluate(day_for(rule, {"rolling:63": measure_day(
         [0.3, 0.05], low=[0.1, -0.1], high=[0.5, 0.2])}))
     # Canonical order: KLV/ORMA (band wholly positive) first, then TEZ10/LUMA5 (band spans 0).

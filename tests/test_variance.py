@@ -182,3 +182,59 @@ def test_kurtosis_ignores_missing_rows_and_needs_enough_of_them() -> None:
     assert np.isnan(kurtosis[2])  # 40 values, fewer than 60
     phi = tail_factor(kurtosis, [[0, 1], [0, 2]])
     assert phi[0] >= 1.0 and np.isnan(phi[1])
+
+
+@pytest.mark.parametrize(("law", "fisher_at_most", "robust_at_least"), [
+    ("t4", 0.85, 0.89),
+    ("normal", 1.0, 0.94),
+])
+def test_robust_band_covers_far_better_than_fisher_on_fat_tails(
+    law: str, fisher_at_most: float, robust_at_least: float
+) -> None:
+    """2,000 windows of 63 days, true rho 0.5, 95 % bands (simulation; numpy's corrcoef as
+    the reference estimator). On bivariate Student t(4) returns (common mixing, fourth
+    moment infinite) Fisher's band covers about 81 % of the time; widened by the tail factor
+    of the standardised returns (monitor.rules.stats.widened_band, as sign and confident
+    level rules use it) about 91 %: much nearer, still short of 95 % because a capped
+    kurtosis cannot see an infinite one (stated in README Methods). On normal returns the
+    robust band stays at 95 %."""
+    from monitor.engine.bands import fisher_band
+    from monitor.engine.scaling import standardise
+    from monitor.rules.stats import widened_band
+
+    rng = np.random.default_rng(11)
+    windows, rows, rho = 2000, 252 + 63, 0.5
+    z = rng.standard_normal((rows, windows, 2))
+    z[..., 1] = rho * z[..., 0] + np.sqrt(1 - rho**2) * z[..., 1]
+    if law == "t4":
+        z = z / np.sqrt(rng.chisquare(4, (rows, windows, 1)) / 4)
+    scaled = standardise(np.concatenate([z[..., 0], z[..., 1]], axis=1))
+    a, b = z[-63:, :, 0], z[-63:, :, 1]
+    r = np.array([np.corrcoef(a[:, k], b[:, k])[0, 1] for k in range(windows)])
+    low, high = fisher_band(r, np.full(windows, 63.0), 0.95)
+    pairs = np.column_stack([np.arange(windows), np.arange(windows) + windows])
+    phi = pair_tail_factor(scaled[-252:], pairs)
+    wide_low, wide_high = widened_band(r, low, high, phi)
+    fisher = float(np.mean((low <= rho) & (rho <= high)))
+    robust = float(np.mean((wide_low <= rho) & (rho <= wide_high)))
+    assert fisher <= fisher_at_most
+    assert robust >= robust_at_least
+    assert robust <= 0.97
+
+
+def test_a_window_holding_a_stress_day_gets_its_own_wider_factor() -> None:
+    """The nested shift test's short window: one day five times the usual size inside 21
+    calm rows makes that window's kurtosis (and so its factor) large, while the long-run
+    factor over 252 rows barely moves; calm windows stay at the floor of 1."""
+    from monitor.engine.variance import window_tail_factor
+
+    rng = np.random.default_rng(5)
+    history = rng.standard_normal((252, 2))
+    pairs = np.array([[0, 1]])
+    calm = window_tail_factor(history, pairs, rows=21)
+    history[-3] = [5.0, -5.0]
+    stressed = window_tail_factor(history, pairs, rows=21)
+    assert calm[0] < 1.3 and stressed[0] > 2.0
+    assert pair_tail_factor(history, pairs)[0] < stressed[0]
+    earlier = window_tail_factor(history, pairs, rows=21, skip=21)
+    assert earlier[0] < 1.3  # the window before the stress day does not see it

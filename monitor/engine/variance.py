@@ -163,3 +163,22 @@ def tail_factor(kurtosis: npt.ArrayLike, pairs: npt.ArrayLike) -> Float1D:
 def pair_tail_factor(history: npt.ArrayLike, pairs: npt.ArrayLike) -> Float1D:
     """:func:`tail_factor` of ``pairs`` (P, 2) from standardised returns (L, N)."""
     return tail_factor(instrument_kurtosis(history), pairs)
+
+
+def window_tail_factor(history: npt.ArrayLike, pairs: npt.ArrayLike, *, rows: int,
+                       skip: int = 0) -> Float1D:
+    """The tail factor of one test window: ``max(1, (k_i + k_j) / 6)`` with each kurtosis
+    taken over the ``rows`` rows that end ``skip`` rows before today.
+
+    Given the day-by-day scales of standardised returns, the variance of r in a window is
+    about ``(1 - rho^2)^2 / n`` times ``n sum s^4 / (sum s^2)^2`` (a Kish-type effective
+    count of the window, Kish 1965), which the window's own kurtosis over 3 estimates. A
+    window holding one stress day is then read with the wider variance it has, where the
+    long-run factor would treat it as an average window. NaN where the window has fewer
+    than half its rows present.
+    """
+    values = np.asarray(history, dtype=np.float64)
+    end = values.shape[0] - skip
+    window = values[max(0, end - rows):end]
+    kurtosis = instrument_kurtosis(window, rows=rows, min_rows=max(4, rows // 2))
+    return tail_factor(kurtosis, pairs)

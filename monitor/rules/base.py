@@ -15,10 +15,12 @@ from typing import Any, ClassVar, cast
 
 import numpy as np
 
-from monitor._typing import Severity
+from monitor._typing import Float1D, Severity
+from monitor.engine.variance import pair_tail_factor
 from monitor.errors import SpecError
-from monitor.rules.inputs import Condition, DayInputs
+from monitor.rules.inputs import Condition, DayInputs, MeasureLike
 from monitor.rules.params import NAME_PATTERN, MeasureSpec, Param, TableReader, _check_measure
+from monitor.rules.stats import widened_band
 from monitor.rules.targets import IntArray, Targets, Universe
 
 SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
@@ -75,6 +77,25 @@ def read_false_alarms(reader: TableReader) -> float:
             f"{rate!r} must be above 0 and below 1 (expected false alerts per pair per year)",
         )
     return rate
+
+
+BAND_VARIANCE_PARAMETER = Param(
+    "variance",
+    "str",
+    "Band behind the decision: robust (Fisher band widened by the tail factor of the "
+    "volatility-standardised returns) or fisher (independent normal returns).",
+    default="robust",
+    choices=("robust", "fisher"),
+)
+"""Shared by the rules that decide on a confidence band (``sign``, ``level`` with
+``confident``)."""
+
+BAND_NOTES = {
+    "robust": "robust band (Fisher band widened by the tail factor of the volatility-"
+              "standardised returns); the desk's own level, no false-alarm rate stated",
+    "fisher": "Fisher band (assumes independent normal returns); the desk's own level, no "
+              "false-alarm rate stated",
+}
 
 
 MEASURE_PARAMETER = Param(
@@ -210,3 +231,15 @@ class Rule(ABC):
     @abstractmethod
     def evaluate(self, day: DayInputs) -> Condition:
         """The rule's condition today over its targets (P_rule,); no state, no I/O."""
+
+
+def band_of(variance: str, measure: MeasureLike, day: DayInputs, pairs: IntArray
+            ) -> tuple[Float1D, Float1D]:
+    """The band a band rule decides on: the measure's Fisher band, or (``robust``) the same
+    widened by the pairs' tail factor from today's standardised history."""
+    if variance != "robust":
+        return measure.low, measure.high
+    if day.scaled_history is None:
+        raise KeyError("DayInputs.scaled_history is missing (variance = 'robust')")
+    phi = pair_tail_factor(day.scaled_history, pairs)
+    return widened_band(measure.value, measure.low, measure.high, phi)

@@ -5,6 +5,12 @@ The move is value_t - value_{t-days} (the pipeline supplies the lagged value, se
 both (``either``, the default). An alert clears once the move over ``days`` is back under
 half of ``delta`` in the watched direction, a dead-band so that a move hovering at
 ``delta`` does not flap.
+
+``delta`` is a raw threshold on the change of the correlation, the desk's own choice: the
+rule states no false-alarm rate. Correlations of short windows move a lot by chance on
+fat-tailed returns (`comove bench alerts` measures it: with rolling:63 and delta 0.3 over
+5 days, hundreds of alerts per 1,000 pair-years on t(4) shocks with clustered volatility);
+for a tested change use ``shift`` or ``cusum``.
 """
 
 from __future__ import annotations
@@ -30,10 +36,12 @@ class JumpRule(Rule):
     """The correlation moved by at least ``delta`` over ``days`` business days."""
 
     kind: ClassVar[str] = "jump"
-    summary: ClassVar[str] = "The correlation moved by at least delta over a few days."
+    summary: ClassVar[str] = ("The correlation moved by at least delta over a few days (a raw "
+                              "threshold, no stated false-alarm rate).")
     own_parameters: ClassVar[tuple[Param, ...]] = (
         MEASURE_PARAMETER,
-        Param("delta", "float", "Smallest move (absolute) that opens.", required=True,
+        Param("delta", "float", "Smallest move (absolute) that opens: a raw threshold on the "
+              "change of the correlation, with no false-alarm rate behind it.", required=True,
               minimum=0.01, maximum=2),
         Param("days", "int", "Business days the move is measured over.", default=5, minimum=1),
         Param("direction", "str", "Which moves count.", default="either",
@@ -68,6 +76,11 @@ class JumpRule(Rule):
 
     def pairs_needed(self) -> IntArray:
         return self.targets.pairs
+
+    def method_note(self) -> str:
+        return (f"raw threshold: a move of at least {self.delta:g} over {self.days} business "
+                "days; no false-alarm rate is stated (short-window correlations move a lot "
+                "by chance).")
 
     def evaluate(self, day: DayInputs) -> Condition:
         pairs = self.targets.pairs

@@ -18,7 +18,16 @@ from typing import ClassVar, Literal
 import numpy as np
 
 from monitor._typing import Float1D
-from monitor.rules.base import MEASURE_PARAMETER, Rule, read_common, read_measure
+from monitor.engine.variance import KURTOSIS_ROWS
+from monitor.rules.base import (
+    BAND_NOTES,
+    BAND_VARIANCE_PARAMETER,
+    MEASURE_PARAMETER,
+    Rule,
+    band_of,
+    read_common,
+    read_measure,
+)
 from monitor.rules.inputs import Condition, DayInputs, MeasureLike
 from monitor.rules.params import Param, TableReader
 from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
@@ -148,12 +157,14 @@ class LevelRule(Rule):
             "Open only when the whole confidence band is beyond the level.",
             default=False,
         ),
+        BAND_VARIANCE_PARAMETER,
     )
 
     targets: PairTargets
     measure: str
     threshold: Threshold
     confident: bool
+    variance: str = "robust"
 
     @classmethod
     def from_table(
@@ -166,6 +177,7 @@ class LevelRule(Rule):
             measure=read_measure(reader, "measure", default_measure).text,
             threshold=read_threshold(reader),
             confident=reader.read_bool("confident"),
+            variance=reader.read_str("variance") or "robust",
         )
 
     def measures(self) -> list[str]:
@@ -174,11 +186,20 @@ class LevelRule(Rule):
     def pairs_needed(self) -> IntArray:
         return self.targets.pairs
 
+    def history_rows(self) -> int:
+        return KURTOSIS_ROWS if self.confident and self.variance == "robust" else 0
+
+    def method_note(self) -> str | None:
+        if not self.confident:
+            return None
+        return f"{BAND_NOTES[self.variance]}: opens when the whole band is beyond the level."
+
     def evaluate(self, day: DayInputs) -> Condition:
         today = day.measure(self.measure, self.targets.pairs)
         test = None
         if self.confident:
-            test = today.low if self.threshold.side == "above" else today.high
+            low, high = band_of(self.variance, today, day, self.targets.pairs)
+            test = low if self.threshold.side == "above" else high
         return threshold_condition(
             self.threshold, today.value, test=test, source=today
         )

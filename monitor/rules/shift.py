@@ -47,7 +47,7 @@ import numpy as np
 
 from monitor.engine.bands import normal_quantile
 from monitor.engine.spec import parse_measure
-from monitor.engine.variance import KURTOSIS_ROWS, pair_tail_factor
+from monitor.engine.variance import KURTOSIS_ROWS, pair_tail_factor, window_tail_factor
 from monitor.rules.base import (
     FALSE_ALARMS_PARAMETER,
     MEASURE_PARAMETER,
@@ -264,10 +264,20 @@ class ShiftRule(Rule):
         return f"{variance}; {rule}."
 
     def tail_factor(self, day: DayInputs) -> np.ndarray:
-        """The pairs' tail factors phi (P_rule,) from today's standardised history."""
+        """The pairs' tail factors phi (P_rule,) from today's standardised history: the
+        larger of the long-run factor (252 rows) and the factor of each tested window that
+        is shorter than the history (the short window of a nested test; both windows of an
+        adjacent one), so that a window holding a stress day gets its own wider variance."""
         if day.scaled_history is None:
             raise KeyError("DayInputs.scaled_history is missing (variance = 'robust')")
-        return pair_tail_factor(day.scaled_history, self.targets.pairs)
+        history, pairs = day.scaled_history, self.targets.pairs
+        phi = pair_tail_factor(history, pairs)
+        window = self.window
+        if window is not None:
+            skips = (0,) if self.long is not None else (0, window)
+            for skip in skips:
+                phi = np.fmax(phi, window_tail_factor(history, pairs, rows=window, skip=skip))
+        return phi
 
     def evaluate(self, day: DayInputs) -> Condition:
         pairs = self.targets.pairs

@@ -13,7 +13,16 @@ from typing import ClassVar, Literal, cast
 
 import numpy as np
 
-from monitor.rules.base import MEASURE_PARAMETER, Rule, read_common, read_measure
+from monitor.engine.variance import KURTOSIS_ROWS
+from monitor.rules.base import (
+    BAND_NOTES,
+    BAND_VARIANCE_PARAMETER,
+    MEASURE_PARAMETER,
+    Rule,
+    band_of,
+    read_common,
+    read_measure,
+)
 from monitor.rules.inputs import Condition, DayInputs
 from monitor.rules.params import Param, TableReader
 from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
@@ -31,11 +40,13 @@ class SignRule(Rule):
         MEASURE_PARAMETER,
         Param("expected", "str", "The sign the pair normally has.", required=True,
               choices=("positive", "negative")),
+        BAND_VARIANCE_PARAMETER,
     )
 
     targets: PairTargets
     measure: str
     expected: Expected
+    variance: str = "robust"
 
     @classmethod
     def from_table(
@@ -47,6 +58,7 @@ class SignRule(Rule):
             targets=resolve_pairs(reader, universe),
             measure=read_measure(reader, "measure", default_measure).text,
             expected=cast(Expected, reader.read_str("expected")),
+            variance=reader.read_str("variance") or "robust",
         )
 
     def measures(self) -> list[str]:
@@ -55,11 +67,18 @@ class SignRule(Rule):
     def pairs_needed(self) -> IntArray:
         return self.targets.pairs
 
+    def history_rows(self) -> int:
+        return KURTOSIS_ROWS if self.variance == "robust" else 0
+
+    def method_note(self) -> str:
+        return f"{BAND_NOTES[self.variance]}: opens when the band lies beyond zero."
+
     def evaluate(self, day: DayInputs) -> Condition:
         today = day.measure(self.measure, self.targets.pairs)
-        known = np.isfinite(today.low) & np.isfinite(today.high)
+        low, high = band_of(self.variance, today, day, self.targets.pairs)
+        known = np.isfinite(low) & np.isfinite(high)
         # Distance of the band's near edge beyond zero on the unexpected side.
-        excess = -today.high if self.expected == "positive" else today.low
+        excess = -high if self.expected == "positive" else low
         return Condition.build(
             breach=excess > 0,
             clear=(excess <= 0) & known,

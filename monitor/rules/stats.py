@@ -12,7 +12,7 @@ import numpy as np
 from monitor._typing import Float1D
 from monitor.engine.shift import two_sided_p
 
-__all__ = ["fisher_difference", "two_sided_p"]
+__all__ = ["fisher_difference", "two_sided_p", "widened_band"]
 
 _R_LIMIT = 1.0 - 1e-12
 """Correlations are clipped here so atanh stays finite for a perfectly tracking pair."""
@@ -75,3 +75,20 @@ def fisher_difference(
         difference /= variance
     difference[invalid] = np.nan
     return difference
+
+
+def widened_band(value: Float1D, low: Float1D, high: Float1D, phi: Float1D
+                 ) -> tuple[Float1D, Float1D]:
+    """The Fisher band (low, high) around ``value`` with its z half-widths times sqrt(phi).
+
+    Fisher's band is ``tanh(atanh r -+ q / sqrt(n - 3))``; a tail factor phi multiplies the
+    variance of atanh r (see :mod:`monitor.engine.variance`), so each half-width in z grows
+    by ``sqrt(phi)``. NaN where any input is NaN.
+    """
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = np.arctanh(np.clip(value, -_R_LIMIT, _R_LIMIT))
+        grow = np.sqrt(np.asarray(phi, dtype=np.float64))
+        lower = np.tanh(centre - (centre - np.arctanh(np.clip(low, -_R_LIMIT, _R_LIMIT))) * grow)
+        upper = np.tanh(centre + (np.arctanh(np.clip(high, -_R_LIMIT, _R_LIMIT)) - centre)
+                        * grow)
+    return lower, upper
