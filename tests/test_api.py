@@ -287,7 +287,7 @@ def test_evaluate_gives_the_events_of_a_direct_replay(panel: pd.DataFrame) -> No
 def test_evaluate_gives_the_events_the_backfill_stores(
     store_url: str, write_settings: Callable[..., Settings], tmp_path: Path
 ) -> None:
-    """The backfill of tests/test_backfill.py and api.evaluate on the same closes."""
+    """The backfill of tests/pipeline/test_backfill.py and api.evaluate on the same closes."""
     from monitor.pipeline import evaluate_range, ingest_file, init_store
     from storage import alerts as alerts_store
 

@@ -438,7 +438,7 @@ KNOWN_BOUNDARIES: dict[tuple[float, int, int, float], float] = {
     (0.01, 252, 126, 0.35): 12.936320179512283,
 }
 """:func:`calibrate` results for the default settings, so a desk on the defaults does not
-wait for the simulation; tests/test_cusum.py recomputes every entry and requires equality."""
+wait for the simulation; tests/rules/test_cusum.py recomputes every entry and requires equality."""
 
 
 def boundary(false_alarms: float, baseline: int, horizon: int, change: float) -> float:

@@ -21,7 +21,7 @@ from monitor.pipeline import open_settings_store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 
 @pytest.fixture(scope="module")

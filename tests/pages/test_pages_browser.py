@@ -25,7 +25,7 @@ import pytest
 
 from monitor.pages.serve import make_server, server_url
 from monitor.pages.write import build_site
-from tests.test_pages import made_up_context
+from tests.pages.test_pages import made_up_context
 
 pytestmark = pytest.mark.browser
 
@@ -34,7 +34,7 @@ CHROMIUM_ARGS = [
     "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
     "--disable-component-update", "--no-first-run", "--disable-quic", "--disable-sync",
 ]
-ARTEFACTS = Path(__file__).resolve().parents[1] / "test-artefacts"
+ARTEFACTS = Path(__file__).resolve().parents[2] / "test-artefacts"
 UNDER_CI = os.environ.get("CI", "").lower() in ("1", "true", "yes")
 
 

@@ -203,7 +203,8 @@ def test_unknown_kind_suggests_the_nearest() -> None:
 def test_missing_kind_lists_the_known_kinds() -> None:
     message = error_of({"name": "t"})
     assert message == (
-        "rules[0] (t).kind: missing required key (one of basket, cusum, jump, level, shift, sign, stale)"
+        "rules[0] (t).kind: missing required key "
+        "(one of basket, cusum, jump, level, shift, sign, stale)"
     )
 
 
@@ -472,7 +473,8 @@ class BandlessMeasure:
 
 def test_rules_read_the_band_only_when_they_need_it() -> None:
     plain = one(kind="level", above=0.7, pairs=["KLV/ORMA", "KLV/VESK"])
-    confident = one(kind="level", above=0.7, confident=True, variance="fisher", pairs=["KLV/ORMA", "KLV/VESK"])
+    confident = one(kind="level", above=0.7, confident=True, variance="fisher",
+                    pairs=["KLV/ORMA", "KLV/VESK"])
     quiet = {"rolling:63": BandlessMeasure([0.2, 0.3])}
     book = AlertBook()
     assert book.step(plain, plain.evaluate(day_for(plain, quiet)), START) == []
@@ -694,7 +696,8 @@ def test_sign_opens_when_the_band_is_wholly_on_the_other_side_and_clears_at_zero
 
 
 def test_sign_expected_negative_mirrors_positive() -> None:
-    rule = one(kind="sign", expected="negative", variance="fisher", pairs=["TEZ10/LUMA5", "KLV/ORMA"])
+    rule = one(kind="sign", expected="negative", variance="fisher",
+               pairs=["TEZ10/LUMA5", "KLV/ORMA"])
     condition = rule.evaluate(day_for(rule, {"rolling:63": measure_day(
         [0.3, 0.05], low=[0.1, -0.1], high=[0.5, 0.2])}))
     # Canonical order: KLV/ORMA (band wholly positive) first, then TEZ10/LUMA5 (band spans 0).

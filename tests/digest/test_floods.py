@@ -46,7 +46,7 @@ from monitor.pages.write import build_site
 from monitor.rules import build_rules
 from monitor.templating import format_corr, format_date
 from storage.alerts import AlertRow
-from tests import test_pages_browser
+from tests.pages import test_pages_browser
 
 AS_OF = date(2026, 3, 5)
 FLOOD = 300
