@@ -33,5 +33,19 @@ class LeaseHeld(ComoveError):
     """Another process holds the evaluation lease (a daily run or a backfill is running)."""
 
 
+class MailError(ComoveError):
+    """The digest could not be handed to the SMTP server."""
+
+    def __init__(
+        self, message: str, *, host: str, port: int, attempts: int, reason: str, permanent: bool
+    ) -> None:
+        super().__init__(message)
+        self.host = host
+        self.port = port
+        self.attempts = attempts
+        self.reason = reason
+        self.permanent = permanent
+
+
 class JobStoreError(ComoveError):
     """The scheduler's job store cannot be opened (the main store has storage.StoreError)."""

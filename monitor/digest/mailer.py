@@ -28,24 +28,10 @@ from dataclasses import dataclass, field
 from email.message import EmailMessage
 
 from monitor._typing import SmtpSecurity
-from monitor.errors import ComoveError, ConfigError
+from monitor.errors import ConfigError, MailError
 
 Security = SmtpSecurity
 _SECURITY = ("starttls", "tls", "none")
-
-
-class MailError(ComoveError):
-    """The digest could not be handed to the SMTP server."""
-
-    def __init__(
-        self, message: str, *, host: str, port: int, attempts: int, reason: str, permanent: bool
-    ) -> None:
-        super().__init__(message)
-        self.host = host
-        self.port = port
-        self.attempts = attempts
-        self.reason = reason
-        self.permanent = permanent
 
 
 @dataclass(frozen=True)
