@@ -14,7 +14,8 @@ the reference moves onto the new regime and the monitor restarts from it.
 The rule is a function of the trailing ``baseline + horizon`` rows only, so reruns and
 resumed backfills give the same alerts. The condition reports: ``value`` = correlation of
 the rows since the most likely change point, ``reference`` = the baseline correlation,
-``level`` = ``h``, ``excess`` = evidence - ``h``, ``z`` = the evidence.
+``level`` = ``h``, ``excess`` = evidence - ``h``. No z: the evidence is not a normal
+score, so no p-value is shown for it and the digest orders these alerts by ``excess``.
 """
 
 from __future__ import annotations
@@ -101,6 +102,5 @@ class CusumRule(Rule):
             value=found.since_change,
             level=self.boundary,
             excess=score - self.boundary,
-            z=score,
             reference=found.reference,
         )

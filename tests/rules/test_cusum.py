@@ -270,3 +270,16 @@ def test_bad_keys_are_one_line_errors_naming_rule_and_key(
     message = str(info.value)
     assert message.startswith(f"rules[0] (c).{key}: ") and words in message
     assert "\n" not in message
+
+
+def test_cusum_alerts_carry_no_normal_score_so_no_p_value_is_shown() -> None:
+    """The evidence is a log-likelihood sum, not a z: an event must not turn it into a
+    p-value (the digest would print a meaningless one)."""
+    breaks = np.array([WARM_UP + 150])
+    panel = break_panel(5, 1, WARM_UP + 330, "normal", -0.1, breaks)
+    rules = _rules(2)
+    opened = [e for e in _events(panel, rules, AlertBook()) if e.event == "opened"]
+    assert opened
+    for event in opened:
+        assert math.isnan(event.z) and math.isnan(event.p)
+        assert event.level > 0 and event.value < event.reference
