@@ -19,6 +19,11 @@ import jinja2
 
 from monitor.errors import ComoveError
 
+SCREENFUL = 25
+"""Most alerts one list of the digest, or one day of one rule on the pages, shows in full;
+a longer list is summarised. About what fits on a screen or two of an email client
+(common practice: a reader scans, not scrolls, an alert list)."""
+
 MINUS = "\u2212"
 """Typographic minus sign: as wide as "+", so signed columns line up in proportional fonts."""
 

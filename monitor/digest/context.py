@@ -18,6 +18,7 @@ import numpy as np
 
 from monitor._typing import CorrMatrix, Float1D, ReturnKind, Severity
 from monitor.errors import ConfigError
+from monitor.templating import tuple_fields
 
 SEVERITY_RANK: dict[str, int] = {"critical": 0, "warning": 1, "info": 2}
 """Display order of severities, most severe first."""
@@ -25,13 +26,6 @@ SEVERITY_RANK: dict[str, int] = {"critical": 0, "warning": 1, "info": 2}
 MAX_DRIVERS = 5
 """Driver days shown per alert."""
 
-
-def _tupled(instance: object, *names: str) -> None:
-    # Frozen dataclasses still hold whatever sequence they were given; a tuple makes the
-    # context really immutable and lets the pipeline pass lists. The digest's other
-    # modules import these three helpers from here rather than keep copies.
-    for name in names:
-        object.__setattr__(instance, name, tuple(getattr(instance, name)))
 
 
 def _float_array(instance: object, *names: str) -> None:
@@ -102,7 +96,7 @@ class AlertHistory:
     band_high: Float1D
 
     def __post_init__(self) -> None:
-        _tupled(self, "dates")
+        tuple_fields(self, "dates")
         _float_array(self, "values", "band_low", "band_high")
         lengths = {len(self.dates), self.values.size, self.band_low.size, self.band_high.size}
         if len(lengths) != 1:
@@ -210,7 +204,7 @@ class AlertView:
             raise ConfigError(
                 f"severity: {self.severity!r} is not one of critical, warning, info"
             )
-        _tupled(self, "drivers", "groups")
+        tuple_fields(self, "drivers", "groups")
 
     @property
     def pair(self) -> str:
@@ -301,7 +295,7 @@ class BasketView:
     history_values: Float1D = field(default_factory=lambda: np.zeros(0))
 
     def __post_init__(self) -> None:
-        _tupled(self, "history_dates")
+        tuple_fields(self, "history_dates")
         _float_array(self, "history_values")
         if len(self.history_dates) != self.history_values.size:
             raise ValueError(
@@ -358,7 +352,7 @@ class HeatmapView:
     matrix: CorrMatrix
 
     def __post_init__(self) -> None:
-        _tupled(self, "symbols")
+        tuple_fields(self, "symbols")
         _float_array(self, "matrix")
         n = len(self.symbols)
         if self.matrix.shape != (n, n):
@@ -399,7 +393,7 @@ class DigestParameters:
     basket_days: int = 21
 
     def __post_init__(self) -> None:
-        _tupled(self, "measures", "observations")
+        tuple_fields(self, "measures", "observations")
         if len(self.measures) != len(self.observations):
             raise ConfigError(
                 f"observations: {len(self.observations)} counts for "
@@ -474,7 +468,7 @@ class DigestContext:
     pages_url: str = ""
 
     def __post_init__(self) -> None:
-        _tupled(
+        tuple_fields(
             self, "new_alerts", "continuing", "acknowledged", "cleared", "movers",
             "baskets", "data_quality", "heatmaps",
         )

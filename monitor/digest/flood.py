@@ -19,11 +19,7 @@ from datetime import date
 from urllib.parse import urlencode
 
 from monitor.digest.context import AlertView
-
-SCREENFUL = 25
-"""Most alerts one list of the digest (or one day of one rule on the pages) shows in full;
-a longer list is summarised. About what fits on a screen or two of an email client
-(common practice: a reader scans, not scrolls, an alert list)."""
+from monitor.templating import SCREENFUL
 
 NO_GROUP = "no group"
 """Group label of an alert whose instruments belong to no group of the desk."""

@@ -31,15 +31,11 @@ from monitor.pages.context import (
     MeasureHistory,
 )
 from monitor.pages.paths import pair_page_path, target_page_path
-from monitor.templating import format_corr, format_date
+from monitor.templating import SCREENFUL, format_corr, format_date
 
 MONTH_END_ROWS = 400
 """Most month-end rows printed under a chart (more than 33 years of history)."""
 
-SCREENFUL = 25
-"""Most alerts of one rule on one day listed without a summary line. The same number as
-the digest's `monitor.digest.flood.SCREENFUL` (a test holds them equal); kept here so the
-pages do not import the digest package."""
 
 FLOOD_STRONGEST = 3
 """Alerts named in a busy day's summary line before "and N more"."""
