@@ -418,7 +418,10 @@ def _digest(args: argparse.Namespace) -> int:
 
 def _run_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--once", action="store_true",
-                        help="run the daily job now instead of on the schedule")
+                        help="run the daily job now instead of on the schedule; exit "
+                             "code 0: done, 3: done with data problems (a file rejected, "
+                             "no closes, a critical alert opened), 4: a digest not sent "
+                             "or perhaps sent (it stays in the outbox), 1: an error")
     parser.add_argument("--as-of", type=_date, metavar="DATE",
                         help="with --once: the as-of date (default: today in the "
                              "schedule's zone)")

@@ -23,7 +23,7 @@ import logging
 import re
 import signal
 import threading
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType
@@ -43,18 +43,19 @@ from apscheduler.schedulers import SchedulerNotRunningError
 from apscheduler.schedulers.blocking import BlockingScheduler
 from apscheduler.triggers.base import BaseTrigger
 
-from monitor.calendar import UTC, Schedule, as_of_for, business_days_between
+from monitor.calendar import UTC, Schedule, as_of_for
 from monitor.config import Settings
 from monitor.errors import ComoveError, JobStoreError
 from monitor.logs import setup_logging
-from monitor.pipeline import last_completed_daily, run_days, schedule_of
+from monitor.pipeline import DailyReport, missed_days, run_days, schedule_of
 
 # HolidayAwareTrigger stays importable here: job stores written before the trigger had its
 # own module pickled it as monitor.scheduler.HolidayAwareTrigger.
 from monitor.trigger import HolidayAwareTrigger, make_trigger, previous_fire_time
 from storage import Store
 
-__all__ = ["HolidayAwareTrigger", "run_daily_command", "run_scheduler"]
+__all__ = ["EXIT_DATA", "EXIT_EMAIL", "HolidayAwareTrigger", "once_exit_code",
+           "run_daily_command", "run_scheduler"]
 
 JOB_ID = "comove-daily"
 """Id of the one job in the job store; a restart replaces it instead of adding a second."""
@@ -405,27 +406,50 @@ def run_daily_command(store: Store, settings: Settings, *, once: bool, as_of: dt
     schedule = schedule_of(settings)
     if once:
         day = as_of or dt.datetime.now(schedule.zone).date()
-        run_days(store, settings, day, force=force, catch_up=catch_up)
-        return 0
+        return once_exit_code(run_days(store, settings, day, force=force, catch_up=catch_up))
 
     def job(day: dt.date) -> object:
         return run_days(store, settings, day, catch_up=True)
 
     if catch_up:
-        today = dt.datetime.now(schedule.zone).date()
-        last = last_completed_daily(store)
-        if last is not None:
-            fired = previous_fire_time(schedule, dt.datetime.now(schedule.zone))
-            through = fired.date() if fired else today
-            missed = business_days_between(schedule, last, through)
+        # The days whose scheduled fire has passed with no completed run: through the
+        # as-of date of the latest fire time (today once today's time has passed).
+        fired = previous_fire_time(schedule, dt.datetime.now(schedule.zone))
+        if fired is not None:
+            missed = missed_days(store, settings, as_of_for(fired, schedule))
             if missed:
                 logger.info("catching up %d missed day(s): %s", len(missed),
                             ", ".join(map(str, missed)))
                 run_days(store, settings, missed[-1], catch_up=True)
+            else:
+                logger.info("no missed run dates to catch up")
     jobstore = _jobstore_url(store, settings)
     logging.getLogger("comove").info("job store: %s", jobstore.split("@")[-1])
     run_scheduler(schedule, job, jobstore_url=jobstore, logger=logger)
     return 0
+
+
+EXIT_DATA = 3
+"""`comove run --once`: the run finished, but a file was rejected, a day had no closes (the
+data-feed alert) or a critical alert opened on the day run."""
+EXIT_EMAIL = 4
+"""`comove run --once`: a digest could not be sent, or may have been sent (the connection
+dropped after the server took the message); it stays in the outbox. Wins over EXIT_DATA."""
+
+
+def once_exit_code(reports: Sequence[DailyReport]) -> int:
+    """0 when every day ran cleanly; EXIT_EMAIL when a digest failed or may have been sent;
+    else EXIT_DATA when a file was rejected, a day had no closes or a critical alert
+    opened. Errors never get here: the command line exits 1 with the message."""
+    email = any(r.status == "failed" or r.digest_error or
+                (r.digest is not None and r.digest.status in ("failed", "maybe sent"))
+                for r in reports)
+    if email:
+        return EXIT_EMAIL
+    data = any(r.feed_problem or (r.collected is not None and r.collected.rejected)
+               or (r.evaluation is not None and r.as_of in r.evaluation.critical_opened)
+               for r in reports)
+    return EXIT_DATA if data else 0
 
 
 def _jobstore_url(store: Store, settings: Settings) -> str:

@@ -13,16 +13,19 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import pandas as pd
+
 from monitor.config import Settings
-from monitor.errors import IngestError
+from monitor.errors import IngestError, MailError
 from monitor.pipeline.evaluate import EvaluationReport, evaluate_range
 from monitor.pipeline.ingest import IngestReport, ingest_file
 from monitor.pipeline.lease import evaluation_lease, renew
 from monitor.pipeline.publish import DigestOutcome, build_pages, render_digest_files, send_digest
-from monitor.pipeline.store import FEED_RULE, pages_folder, schedule_of
+from monitor.pipeline.store import FEED_RULE, desk_today, pages_folder, schedule_of
 from storage import Store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
+from storage import outbox as outbox_store
 from storage import runs as runs_store
 
 LOG = logging.getLogger("comove.daily")
@@ -36,13 +39,16 @@ class CollectReport:
 
 def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = None,
                   now: dt.datetime | None = None) -> CollectReport:
-    """Ingest every file in the inbox (each all-or-nothing), then move it to `processed/`
-    or to `rejected/` with a `.problems.txt` report beside it."""
+    """Ingest every file in the inbox (each all-or-nothing), oldest closes first, then move
+    it to `processed/` or to `rejected/` with a `.problems.txt` report beside it.
+
+    `today` is the latest date a close may carry (closes after it are refused as future);
+    it defaults to the desk's date by the real clock, never earlier.
+    """
     inbox = settings.inbox
     inbox.mkdir(parents=True, exist_ok=True)
     report = CollectReport()
-    files = sorted(p for p in inbox.iterdir()
-                   if p.is_file() and (p.name.endswith(".csv") or p.name.endswith(".csv.gz")))
+    files = inbox_files(inbox)
     for path in files:
         try:
             result = ingest_file(store, settings, path, today=today, now=now)
@@ -56,6 +62,34 @@ def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = N
         _move(path, inbox / "processed")
         report.accepted.append(result)
     return report
+
+
+def inbox_files(inbox: Path) -> list[Path]:
+    """The closes files waiting in `inbox`, in date order: by the latest date each holds,
+    then by modification time (a restatement dropped after the original comes after it),
+    then by name. A file whose dates cannot be read goes last; ingesting it says why."""
+    files = [p for p in inbox.iterdir()
+             if p.is_file() and (p.name.endswith(".csv") or p.name.endswith(".csv.gz"))]
+    if len(files) < 2:
+        return files
+
+    def key(path: Path) -> tuple[dt.date, float, str]:
+        return (_latest_date(path) or dt.date.max, path.stat().st_mtime, path.name)
+
+    return sorted(files, key=key)
+
+
+def _latest_date(path: Path) -> dt.date | None:
+    from monitor.data.parse import parse_closes, read_bytes
+
+    try:
+        parsed = parse_closes(path.name, read_bytes(path), today=dt.date.max,
+                              known_symbols=None)
+    except Exception:  # only the order is at stake here; ingest reports the fault itself
+        return None
+    if parsed.rows.empty:
+        return None
+    return pd.Timestamp(parsed.rows["date"].max()).date()
 
 
 def _move(path: Path, folder: Path) -> Path:
@@ -79,6 +113,7 @@ class DailyReport:
     feed_problem: str = ""
     pages: Any = None
     message: str = ""
+    digest_error: str = ""
 
 
 def _feed_alert(store: Store, settings: Settings, as_of: dt.date, last_close: dt.date | None,
@@ -126,11 +161,17 @@ def run_daily(
     environ: dict[str, str] | None = None,
     sleep: Callable[[float], None] = time.sleep,
     wait_seconds: float = 0.0,
+    inbox_through: dt.date | None = None,
 ) -> DailyReport:
     """The daily job: lease, collect the inbox, evaluate, digest (outbox, send), pages,
     ledger. Idempotent: a second run for a done as-of date changes nothing unless `force`.
+
+    The inbox is read against the real today (the desk's date by the clock), or against
+    `inbox_through` when that is later (the last day of a catch-up), never against a
+    missed day being caught up: a later day's file is not refused as future.
     """
     moment = now or dt.datetime.now(dt.UTC)
+    reading_day = max(as_of, desk_today(settings, moment), inbox_through or as_of)
     with store.connect() as conn:
         done = [r for r in runs_store.list_runs(conn, kind="daily", as_of=as_of, status="done")]
     if done and not force:
@@ -146,7 +187,7 @@ def run_daily(
                                           params_hash="", now=moment)
         report = DailyReport(as_of=as_of, status="running", run_id=run_id)
         try:
-            report.collected = collect_inbox(store, settings, today=as_of, now=moment)
+            report.collected = collect_inbox(store, settings, today=reading_day, now=moment)
             renew(store, owner)
             with store.connect() as conn:
                 last = closes_store.last_close_date(conn, as_of)
@@ -197,30 +238,101 @@ def last_completed_daily(store: Store) -> dt.date | None:
     return max((r.as_of for r in done), default=None)
 
 
-def run_days(store: Store, settings: Settings, as_of: dt.date, *, force: bool = False,
-             catch_up: bool = True) -> list[DailyReport]:
-    """Run every missed scheduled day since the last completed run (each with its own
-    ledger row and its own digest, oldest first), then `as_of`."""
+MAX_CATCH_UP_DAYS = 10
+"""Missed run dates a catch-up runs one by one (each with its own digest); older missed
+days are still evaluated by the first of them, but get no digest of their own (a desk
+back after a long stop wants today's picture, not a pile of old emails)."""
+
+
+def catch_up_start(store: Store, as_of: dt.date) -> dt.date | None:
+    """The day after which run dates count as missed: the last completed daily run, or,
+    in a store that never had one, the latest close on or before `as_of` (closes ingested
+    or backfilled from the shell up to that day)."""
+    last = last_completed_daily(store)
+    if last is not None:
+        return last
+    with store.connect() as conn:
+        return closes_store.last_close_date(conn, as_of)
+
+
+def missed_days(store: Store, settings: Settings, through: dt.date) -> list[dt.date]:
+    """The scheduled run dates after `catch_up_start` up to and including `through`, at
+    most the last MAX_CATCH_UP_DAYS of them."""
     from monitor.calendar import business_days_between
 
-    schedule = schedule_of(settings)
-    days = [as_of]
-    last = last_completed_daily(store)
-    if catch_up and last is not None and last < as_of:
-        days = business_days_between(schedule, last, as_of)
-        if as_of not in days:
-            days.append(as_of)
+    start = catch_up_start(store, through)
+    if start is None or start >= through:
+        return []
+    days = business_days_between(schedule_of(settings), start, through)
+    if len(days) > MAX_CATCH_UP_DAYS:
+        LOG.warning("%d missed run dates from %s to %s: the last %d are run one by one "
+                    "(the earlier ones are evaluated, without a digest of their own)",
+                    len(days), days[0], days[-1], MAX_CATCH_UP_DAYS)
+        days = days[-MAX_CATCH_UP_DAYS:]
+    return days
+
+
+def run_days(store: Store, settings: Settings, as_of: dt.date, *, force: bool = False,
+             catch_up: bool = True, environ: dict[str, str] | None = None,
+             sleep: Callable[[float], None] = time.sleep,
+             now: dt.datetime | None = None) -> list[DailyReport]:
+    """Run every missed scheduled day since the last completed run (each with its own
+    ledger row and its own digest, oldest first), then `as_of`.
+
+    Every day reads the inbox against the latest of these days (or the real today), so a
+    day being caught up never refuses a later day's file as future. A digest that cannot
+    be sent fails its day (the digest stays in the outbox, the next call retries it) but
+    not the days after it: their closes, alerts and digests go ahead. Digests of earlier
+    days still waiting in the outbox are retried first. Any other error stops the
+    sequence.
+    """
+    days = missed_days(store, settings, as_of) if catch_up else []
+    if as_of not in days:
+        days.append(as_of)
     reports = []
+    if settings.digest.recipients:
+        reports += _retry_outbox(store, settings, before=days[0], environ=environ,
+                                 sleep=sleep, now=now)
     for day in days:
-        report = run_daily(store, settings, day, force=force and day == as_of,
-                           pages_dir=pages_folder(settings))
+        try:
+            report = run_daily(store, settings, day, force=force and day == as_of,
+                               pages_dir=pages_folder(settings), environ=environ,
+                               sleep=sleep, now=now, inbox_through=days[-1])
+        except MailError as exc:
+            report = DailyReport(as_of=day, status="failed", digest_error=str(exc),
+                                 message=f"the digest for {day} was not sent: {exc}; it "
+                                         "stays in the outbox and the next run retries it")
         reports.append(report)
-        LOG.info(_describe_daily(report))
+        LOG.log(logging.ERROR if report.status == "failed" else logging.INFO,
+                _describe_daily(report))
+    return reports
+
+
+def _retry_outbox(store: Store, settings: Settings, *, before: dt.date,
+                  environ: dict[str, str] | None, sleep: Callable[[float], None],
+                  now: dt.datetime | None) -> list[DailyReport]:
+    """Send again the digests of days before `before` still waiting in the outbox (their
+    day's run failed at sending; the days after went ahead)."""
+    with store.connect() as conn:
+        waiting = sorted({row.as_of for row in outbox_store.unsent(conn) if row.as_of < before})
+    reports = []
+    for day in waiting:
+        report = DailyReport(as_of=day, status="retried")
+        try:
+            report.digest = send_digest(store, settings, day, environ=environ, sleep=sleep,
+                                        now=now)
+            report.message = f"the digest for {day} waiting in the outbox: {report.digest.status}"
+        except MailError as exc:
+            report.status = "failed"
+            report.digest_error = str(exc)
+            report.message = f"the digest for {day} is still not sent: {exc}"
+        reports.append(report)
+        LOG.log(logging.ERROR if report.status == "failed" else logging.INFO, report.message)
     return reports
 
 
 def _describe_daily(report: DailyReport) -> str:
-    if report.status == "already done":
+    if report.status in ("already done", "retried") or report.digest_error:
         return report.message
     parts = [f"daily run {report.run_id} for {report.as_of}: {report.status}"]
     if report.collected is not None:

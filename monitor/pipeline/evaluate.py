@@ -8,7 +8,7 @@ import datetime as dt
 import difflib
 import time
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -80,6 +80,7 @@ class EvaluationReport:
     reminders: int = 0
     status: str = "done"
     already_done: bool = False
+    critical_opened: list[dt.date] = field(default_factory=list)
 
     def counts(self) -> dict[str, object]:
         return {"days": self.days, "days_written": self.days_written, "opened": self.opened,
@@ -256,6 +257,8 @@ def _commit_days(store: Store, plan: Plan, scope: str, book: AlertBook, days: li
             for event in day.events:
                 if event.event == "opened":
                     report.opened += 1
+                    if event.severity == "critical":
+                        report.critical_opened.append(event.date)
                 elif event.event == "cleared":
                     report.cleared += 1
                 else:
