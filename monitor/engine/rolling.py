@@ -10,11 +10,12 @@ Pearson (``rolling``) keeps running window sums and re-anchors them:
   running sums have absorbed since the last anchor exceed :data:`REANCHOR_RATIO` times an
   instrument's current sum of squared deviations, i.e. when rounding could start to show
   (after a burst of large moves leaves the window, or every ~5 W days otherwise).
-* Days with a gap in some instrument's window: the fast path serves the pairs of complete
-  instruments, and the rows and columns of the others are overwritten with the
-  pairwise-complete masked sums of :mod:`monitor.engine.kernels` (anchored on each chunk's
-  first window, updated by entering and leaving rows), on data centred by each
-  instrument's chunk mean, so that a large common offset costs no accuracy.
+* Days with a gap in some instrument's window: a tile is computed whole from running
+  matrix sums over every pair's common days (:mod:`monitor.engine.gappy`: counts, partial
+  sums and squares, cross products, re-anchored every chunk), on data centred by each
+  instrument's chunk mean, so that a large common offset costs no accuracy. A pair list
+  keeps the fast path for its complete pairs and the masked sums of
+  :mod:`monitor.engine.kernels` for the others.
 
 However long the history, values agree with a two-pass computation to about 1e-14. Zero
 variance is detected exactly (largest == smallest over the window), not from the sums.
@@ -35,6 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from monitor._typing import Returns2D
+from monitor.engine.gappy import ANCHOR_DAYS, gappy_days
 from monitor.engine.kernels import (
     STALE_RATIO,
     constant,
@@ -43,7 +45,7 @@ from monitor.engine.kernels import (
     moments,
     outputs,
 )
-from monitor.engine.layout import BoolArray, FloatArray, IntArray, Layout, Selector
+from monitor.engine.layout import BoolArray, FloatArray, IntArray, Layout, Selector, TileLayout
 from monitor.engine.rank import rank_block
 from monitor.engine.spec import Measure
 from monitor.engine.windows import (
@@ -303,6 +305,11 @@ def _pearson_days(
     if good:
         yield from _complete_days(returns, sub, shift, a, b, window, carry)
         return
+    if isinstance(sub, TileLayout):
+        # running matrix sums for the whole tile, re-anchored every ANCHOR_DAYS days
+        for lo, hi in chunks(a, b, ANCHOR_DAYS):
+            yield from gappy_days(returns, sub, shift, lo, hi, window, min_count)
+        return
     # the masked sums hold seven arrays of pairs per day: shorter runs between anchors
     size = max(1, min(b - a, DEFAULT_CHUNK_BYTES // (8 * 8 * int(np.prod(sub.shape)) + 1)))
     for lo, hi in chunks(a, b, size):
@@ -462,6 +469,9 @@ def _chunk(
     shift = np.zeros(returns.shape[1])
     shift[columns] = column_shift(rows)
     fast, overrides = layout.split(complete[layout.left_index], complete[layout.right_index])
+    if measure.kind == "rolling" and overrides and isinstance(layout, TileLayout):
+        # a tile with gaps is computed whole by the running matrix sums (monitor.engine.gappy)
+        fast, overrides = False, []
     if not (fast and not overrides):
         carry.day = -1  # the running sums cannot continue across this chunk
     base = _block(returns, measure, layout, fast, shift, a, b, window, carry)

@@ -38,6 +38,11 @@ from monitor.engine.scaling import standardise
 from monitor.engine.spec import Measure, as_measure
 from monitor.errors import EngineInputError
 
+RETURN_LIMIT = 1e6
+"""Returns beyond +-this are clipped to it before any sum (a move of 100,000,000 % is a
+data error, not a market move); the running sums of squares and cross products then stay
+far from overflow whatever the input."""
+
 DEFAULT_TILE = 2048
 """Instruments per tile side when ``stream`` cuts the matrix (one tile below this)."""
 
@@ -93,7 +98,8 @@ class DayResult:
 
 
 def as_returns(returns: npt.ArrayLike) -> Returns2D:
-    """The returns matrix as float64 (T, N); raises ValueError on another shape or on inf.
+    """The returns matrix as float64 (T, N), clipped to +-RETURN_LIMIT; raises on another
+    shape or on inf.
 
     The matrix is produced by :mod:`monitor.data.returns`; a wrong one is a programming error,
     not user input.
@@ -103,6 +109,9 @@ def as_returns(returns: npt.ArrayLike) -> Returns2D:
         raise EngineInputError(f"returns must be a (T, N) matrix, got shape {matrix.shape}")
     if np.isinf(matrix).any():
         raise EngineInputError("returns contain inf; missing returns must be NaN")
+    huge = np.abs(matrix) > RETURN_LIMIT  # NaN compares False
+    if huge.any():
+        matrix = np.where(huge, np.copysign(RETURN_LIMIT, matrix), matrix)
     return matrix
 
 
