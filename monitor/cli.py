@@ -411,6 +411,13 @@ def _digest(args: argparse.Namespace) -> int:
     if outcome.status == "already sent":
         print(f"the digest for {as_of} was already sent (outbox {outcome.outbox_id}); "
               "--resend sends it again")
+    elif outcome.status == "maybe sent":
+        from monitor.scheduler import EXIT_EMAIL
+
+        print(f"Warning: the digest for {as_of} may have been sent (outbox "
+              f"{outcome.outbox_id}): {outcome.error}; it is not sent again by itself, "
+              "--resend sends it again", file=sys.stderr)
+        return EXIT_EMAIL
     else:
         print(f"sent: {outcome.subject} ({outcome.attempts} attempt(s))")
     return 0

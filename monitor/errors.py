@@ -37,7 +37,8 @@ class MailError(ComoveError):
     """The digest could not be handed to the SMTP server."""
 
     def __init__(
-        self, message: str, *, host: str, port: int, attempts: int, reason: str, permanent: bool
+        self, message: str, *, host: str, port: int, attempts: int, reason: str, permanent: bool,
+        maybe_sent: bool = False,
     ) -> None:
         super().__init__(message)
         self.host = host
@@ -45,6 +46,9 @@ class MailError(ComoveError):
         self.attempts = attempts
         self.reason = reason
         self.permanent = permanent
+        # The server took the whole message (the final dot) and then never answered: it may
+        # have delivered it, so it must not be sent again without being asked to.
+        self.maybe_sent = maybe_sent
 
 
 class JobStoreError(ComoveError):

@@ -2,8 +2,10 @@
 
 One row per rendered digest. Status moves pending -> sent, or pending -> failed -> sent on
 a later retry; `superseded` marks an older row for the same date when a digest is
-re-rendered for `--resend` or after a restatement. A date whose digest was sent is never
-sent again unless the caller asks for it explicitly.
+re-rendered for `--resend` or after a restatement. `maybe sent` records a send whose
+connection dropped after the server took the whole message: the server may have delivered
+it, so it counts as sent. A date whose digest was sent (or maybe sent) is never sent again
+unless the caller asks for it explicitly.
 """
 
 from __future__ import annotations
@@ -14,6 +16,8 @@ from dataclasses import dataclass
 from sqlalchemy import Connection, select
 
 from storage.schema import outbox
+
+MAYBE_SENT = "maybe sent"
 
 
 @dataclass(frozen=True)
@@ -73,6 +77,14 @@ def mark_failed(conn: Connection, outbox_id: int, *, attempts: int, error: str) 
         status="failed", attempts=outbox.c.attempts + attempts, last_error=error[:2000]))
 
 
+def mark_maybe_sent(conn: Connection, outbox_id: int, *, attempts: int, error: str,
+                    now: dt.datetime) -> None:
+    conn.execute(outbox.update().where(outbox.c.id == outbox_id).values(
+        status=MAYBE_SENT, attempts=outbox.c.attempts + attempts, sent_at=now,
+        last_error=error[:2000]))
+
+
 def sent_for(conn: Connection, as_of: dt.date) -> OutboxRow | None:
-    rows = [r for r in for_date(conn, as_of) if r.status == "sent"]
+    """The date's digest that went out (sent or maybe sent), the latest one."""
+    rows = [r for r in for_date(conn, as_of) if r.status in ("sent", MAYBE_SENT)]
     return rows[-1] if rows else None

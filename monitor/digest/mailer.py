@@ -14,6 +14,10 @@ Policy
   exponential backoff: ``backoff_seconds * 2 ** (k - 1)`` after the k-th failure.
 * 5xx replies (a refused login, a rejected sender or message), certificate failures and
   a server without STARTTLS when it was required are permanent: no retry.
+* A failure after the whole message was sent (the final dot) but before the server's
+  reply (a dropped connection, a timeout) is "maybe sent": the server may deliver it, so
+  it is never retried; the `MailError` has ``maybe_sent`` set and the caller records it.
+  A reply to the final dot, even a refusal, settles the question.
 * Every failure ends in one `MailError` naming host, port, attempts and the reason. The
   outbox that keeps an unsent digest belongs to the caller.
 """
@@ -26,6 +30,10 @@ import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from email.message import EmailMessage
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from _typeshed import ReadableBuffer
 
 from monitor._typing import SmtpSecurity
 from monitor.errors import ConfigError, MailError
@@ -161,6 +169,44 @@ def _describe(error: BaseException) -> tuple[str, bool]:
     raise error
 
 
+class _Watch:
+    """Knows whether the message data went out whole and its reply is still owed.
+
+    `smtplib.SMTP.data` sends the message ending in CRLF.CRLF with one `send` and then
+    reads the reply; a command line never ends that way, so that ending marks the data.
+    """
+
+    awaiting_data_reply = False
+    maybe_sent = False
+
+    def send(self, s: ReadableBuffer | str) -> None:
+        super().send(s)  # type: ignore[misc]
+        ending = s[-5:].encode("ascii", "replace") if isinstance(s, str) else bytes(s)[-5:]
+        if ending == b"\r\n.\r\n":
+            self.awaiting_data_reply = True
+
+    def getreply(self) -> tuple[int, bytes]:
+        try:
+            reply: tuple[int, bytes] = super().getreply()  # type: ignore[misc]
+        except BaseException:
+            self.maybe_sent = self.maybe_sent or self.awaiting_data_reply
+            raise
+        self.awaiting_data_reply = False
+        return reply
+
+
+class _SMTP(_Watch, smtplib.SMTP):
+    pass
+
+
+class _SMTP_SSL(_Watch, smtplib.SMTP_SSL):
+    pass
+
+
+class _MaybeSent(Exception):
+    """The final dot went out and no reply came back."""
+
+
 def _is_encrypted(connection: smtplib.SMTP) -> bool:
     return isinstance(getattr(connection, "sock", None), ssl.SSLSocket)
 
@@ -184,14 +230,30 @@ def _attempt(
     password: str | None,
     context: ssl.SSLContext,
 ) -> dict[str, tuple[int, str]]:
-    connection: smtplib.SMTP
+    connection: _SMTP | _SMTP_SSL
     if settings.security == "tls":
-        connection = smtplib.SMTP_SSL(
+        connection = _SMTP_SSL(
             settings.host, settings.port, timeout=settings.timeout, context=context
         )
     else:
-        connection = smtplib.SMTP(settings.host, settings.port, timeout=settings.timeout)
-    with connection:
+        connection = _SMTP(settings.host, settings.port, timeout=settings.timeout)
+    try:
+        return _converse(connection, msg, settings, password, context)
+    except OSError as error:
+        if connection.maybe_sent or connection.awaiting_data_reply:
+            reason, _ = _describe(error)
+            raise _MaybeSent(f"no reply after the message was sent ({reason})") from error
+        raise
+
+
+def _converse(
+    connection: smtplib.SMTP,
+    msg: EmailMessage,
+    settings: SmtpSettings,
+    password: str | None,
+    context: ssl.SSLContext,
+) -> dict[str, tuple[int, str]]:
+    try:
         connection.ehlo()
         if settings.security == "starttls":
             if not connection.has_extn("starttls"):
@@ -205,6 +267,13 @@ def _attempt(
                 raise _Permanent(f"no password given for user {settings.username!r}")
             _login(connection, settings.username, password)
         refused = connection.send_message(msg)
+    finally:
+        # Say goodbye whatever happened; once the message is accepted a lost goodbye
+        # changes nothing (it must never turn a delivery into a retry).
+        try:
+            connection.quit()
+        except (OSError, smtplib.SMTPException):
+            connection.close()
     return {
         address: (code, _reply_text(reply)) for address, (code, reply) in refused.items()
     }
@@ -268,6 +337,13 @@ def send_message(
     for attempt in range(1, attempts + 1):
         try:
             refused = _attempt(msg, settings, password, context)
+        except _MaybeSent as error:
+            raise MailError(
+                f"mail to {settings.host}:{settings.port} may have been sent (attempt "
+                f"{attempt}): {error}; not retried, so it is not delivered twice",
+                host=settings.host, port=settings.port, attempts=attempt, reason=str(error),
+                permanent=True, maybe_sent=True,
+            ) from error
         except (OSError, _Permanent) as error:
             # smtplib's exceptions are OSError subclasses, so this catches them too.
             reason, permanent = _describe(error)

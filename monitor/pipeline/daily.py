@@ -303,8 +303,9 @@ def run_days(store: Store, settings: Settings, as_of: dt.date, *, force: bool = 
                                  message=f"the digest for {day} was not sent: {exc}; it "
                                          "stays in the outbox and the next run retries it")
         reports.append(report)
-        LOG.log(logging.ERROR if report.status == "failed" else logging.INFO,
-                _describe_daily(report))
+        trouble = report.status == "failed" or (
+            report.digest is not None and report.digest.status == "maybe sent")
+        LOG.log(logging.ERROR if trouble else logging.INFO, _describe_daily(report))
     return reports
 
 
@@ -345,4 +346,7 @@ def _describe_daily(report: DailyReport) -> str:
         parts.append(f"{e.opened} opened, {e.cleared} cleared")
     if report.digest is not None:
         parts.append(f"digest {report.digest.status}: {report.digest.folder}")
+        if report.digest.status == "maybe sent":
+            parts.append(f"{report.digest.error}; not sent again without "
+                         "`comove digest --send --resend`")
     return "; ".join(parts)

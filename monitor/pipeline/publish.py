@@ -41,7 +41,7 @@ class DigestOutcome:
     paths: Any
     subject: str
     outbox_id: int | None = None
-    status: str = "rendered"  # rendered | sent | failed | already sent
+    status: str = "rendered"  # rendered | sent | failed | already sent | maybe sent
     attempts: int = 0
     error: str = ""
 
@@ -200,7 +200,9 @@ def send_digest(
     A date whose digest was sent is not sent again unless `resend`. A digest already in
     the outbox as pending or failed is sent as stored (so a retry sends what was rendered
     when the day was evaluated). A failed send stays in the outbox with its error and
-    raises MailError; the next call retries it.
+    raises MailError; the next call retries it. A send cut off after the server took the
+    whole message is recorded as "maybe sent" (status "maybe sent", no exception) and
+    counts as sent: only `resend` sends it again.
     """
     import os
 
@@ -226,8 +228,10 @@ def send_digest(
         waiting = [row for row in outbox_store.for_date(conn, as_of)
                    if row.status in ("pending", "failed")]
     if sent is not None and not resend:
+        status = "maybe sent" if sent.status == outbox_store.MAYBE_SENT else "already sent"
         return DigestOutcome(as_of=as_of, folder=Path(sent.folder), paths=None,
-                             subject=sent.subject, outbox_id=sent.id, status="already sent")
+                             subject=sent.subject, outbox_id=sent.id, status=status,
+                             error=sent.last_error)
     if waiting and not resend:
         row = waiting[-1]
         outbox_id, raw, subject, folder = row.id, row.message, row.subject, Path(row.folder)
@@ -254,6 +258,14 @@ def send_digest(
                               backoff_seconds=d.backoff_seconds, sleep=sleep,
                               ssl_context=context)
     except MailError as exc:
+        if exc.maybe_sent:
+            # Never sent again by itself: the desk may already have it (--resend forces).
+            with store.begin() as conn:
+                outbox_store.mark_maybe_sent(conn, outbox_id, attempts=exc.attempts,
+                                             error=str(exc), now=now)
+            return DigestOutcome(as_of=as_of, folder=folder, paths=paths, subject=subject,
+                                 outbox_id=outbox_id, status="maybe sent",
+                                 attempts=exc.attempts, error=str(exc))
         with store.begin() as conn:
             outbox_store.mark_failed(conn, outbox_id, attempts=exc.attempts, error=str(exc))
         raise
