@@ -7,8 +7,9 @@ history of a group's average pairwise correlation. Every chart is drawn on a
 `FigureCanvasAgg` directly, never through pyplot, so no GUI backend is ever chosen, no
 global figure state is kept, and concurrent renders cannot interfere.
 
-Output is deterministic: the PNG metadata carries no software version or timestamp, so the
-same inputs give the same bytes. Images are rendered at twice their display size
+Output is deterministic and small: each chart is drawn on the Agg canvas and stored by
+pillow as an 8-bit palette PNG (`PALETTE_COLOURS`), with no software version or timestamp
+in the file, so the same inputs give the same bytes. Images are rendered at twice their display size
 (`DPI` = 200 against `DISPLAY_DPI` = 100) to stay sharp on high-density screens.
 """
 
@@ -25,9 +26,10 @@ import numpy.typing as npt
 from matplotlib.axes import Axes
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LinearSegmentedColormap
-from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
 from matplotlib.figure import Figure
+from PIL import Image
 
+from monitor import chart_axes
 from monitor._typing import CorrMatrix, Float1D
 
 DPI = 200
@@ -90,11 +92,24 @@ def _figure(width_in: float, height_in: float) -> Figure:
     return figure
 
 
+PALETTE_COLOURS = 256
+"""Colours of the PNG palette: charts are stored as 8-bit palette images, a third of the
+bytes of full-colour ones, so a digest with a dozen charts stays small enough to mail."""
+
+
 def _to_image(figure: Figure) -> ChartImage:
+    canvas = figure.canvas
+    assert isinstance(canvas, FigureCanvasAgg)
+    canvas.draw()
+    rgb = Image.frombuffer("RGBA", canvas.get_width_height(), canvas.buffer_rgba(),
+                           "raw", "RGBA", 0, 1).convert("RGB")
+    # Median cut without dithering: flat colours (lines, band, cells) stay flat, and the
+    # same figure gives the same palette, so bytes are identical run to run. Pillow writes
+    # no timestamp or software name into the file.
+    palette = rgb.quantize(colors=PALETTE_COLOURS, method=Image.Quantize.MEDIANCUT,
+                           dither=Image.Dither.NONE)
     buffer = io.BytesIO()
-    # "Software": None drops the only metadata matplotlib writes by default (its version),
-    # so bytes stay identical across runs and upgrades of unrelated packages.
-    figure.savefig(buffer, format="png", dpi=DPI, metadata={"Software": None})
+    palette.save(buffer, format="PNG", optimize=True)
     width_in, height_in = figure.get_size_inches()
     return ChartImage(
         png=buffer.getvalue(),
@@ -121,7 +136,7 @@ def _as_float(values: Sequence[float] | Float1D) -> Float1D:
     return np.asarray(values, dtype=np.float64)
 
 
-def alert_history_chart(
+def alert_history_figure(
     dates: Sequence[date] | npt.NDArray[np.datetime64],
     values: Sequence[float] | Float1D,
     band_low: Sequence[float] | Float1D,
@@ -131,7 +146,7 @@ def alert_history_chart(
     clear_level: float | None = None,
     start: date | None = None,
     title: str = "",
-) -> ChartImage:
+) -> Figure:
     """Draw one alert's measure with its confidence band, level, clear level and start.
 
     Parameters
@@ -150,9 +165,9 @@ def alert_history_chart(
 
     Returns
     -------
-    ChartImage
-        A 6.4 x 2.2 inch chart (1280 x 440 pixels, displayed at 640 x 220). The line
-        styles are described by `ALERT_CHART_KEY`, which the page prints beneath it.
+    Figure
+        A 6.4 x 2.2 inch figure on an Agg canvas; `alert_history_chart` makes it a PNG.
+        The line styles are described by `ALERT_CHART_KEY`, printed beneath the chart.
     """
     x = _as_dates(dates)
     y = _as_float(values)
@@ -173,9 +188,9 @@ def alert_history_chart(
             where=band_known, color=BAND, linewidth=0, label="band",
         )
         axes.plot(x, y, color=LINE, linewidth=1.1, label="value")
-        locator = AutoDateLocator(minticks=3, maxticks=7)
+        locator = chart_axes.date_locator(7)
         axes.xaxis.set_major_locator(locator)
-        axes.xaxis.set_major_formatter(ConciseDateFormatter(locator))
+        axes.xaxis.set_major_formatter(chart_axes.date_formatter(locator))
     if level is not None and np.isfinite(level):
         axes.axhline(level, color=LEVEL, linewidth=0.9, linestyle="--", label="level")
     if clear_level is not None and np.isfinite(clear_level):
@@ -186,12 +201,41 @@ def alert_history_chart(
             np.datetime64(start, "D"),  # type: ignore[arg-type]
             color=START, linewidth=0.9, label="alert start",
         )
-    axes.set_ylim(-1.05, 1.05)
+    # Fitted to the value, its band and both levels (monitor.chart_axes), never -1..1 by
+    # default: a pair living between 0.8 and 0.95 must not be a flat line.
+    bottom, top = chart_axes.value_limits((y, low, high), (level, clear_level))
+    axes.set_ylim(bottom, top)
+    y_ticks = chart_axes.value_ticks(bottom, top)
+    axes.set_yticks(y_ticks, labels=[chart_axes.value_label(t, y_ticks) for t in y_ticks])
     # No legend: the page prints the key in words under the chart (readable by screen
     # readers, and drawing a legend cost a fifth of the chart's time).
     if title:
         figure.text(0.08, 0.93, title, fontsize=8, color=INK)
-    return _to_image(figure)
+    return figure
+
+
+def alert_history_chart(
+    dates: Sequence[date] | npt.NDArray[np.datetime64],
+    values: Sequence[float] | Float1D,
+    band_low: Sequence[float] | Float1D,
+    band_high: Sequence[float] | Float1D,
+    *,
+    level: float | None = None,
+    clear_level: float | None = None,
+    start: date | None = None,
+    title: str = "",
+) -> ChartImage:
+    """Draw `alert_history_figure` (same parameters) as a PNG.
+
+    Returns
+    -------
+    ChartImage
+        A 6.4 x 2.2 inch chart (1280 x 440 pixels, displayed at 640 x 220).
+    """
+    return _to_image(alert_history_figure(
+        dates, values, band_low, band_high, level=level, clear_level=clear_level,
+        start=start, title=title,
+    ))
 
 
 def average_linkage(distance: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
@@ -391,14 +435,11 @@ def basket_history_chart(
     _style_axes(axes)
     if x.size:
         axes.plot(x, y, color=LINE, linewidth=1.0)
-        locator = AutoDateLocator(minticks=2, maxticks=4)
+        locator = chart_axes.date_locator(4)
         axes.xaxis.set_major_locator(locator)
-        axes.xaxis.set_major_formatter(ConciseDateFormatter(locator))
-        finite = y[np.isfinite(y)]
-        if finite.size:
-            low, high = float(finite.min()), float(finite.max())
-            pad = max(0.05, 0.1 * (high - low))
-            axes.set_ylim(max(-1.05, low - pad), min(1.05, high + pad))
+        axes.xaxis.set_major_formatter(chart_axes.date_formatter(locator))
+        if np.isfinite(y).any():
+            axes.set_ylim(*chart_axes.value_limits((y,)))
     axes.tick_params(labelsize=6)
     if title:
         figure.text(0.13, 0.88, title, fontsize=7, color=INK)

@@ -6,10 +6,12 @@ many such charts are rendered for a site (one process, or a small pool of proces
 
 Charts are drawn on a `FigureCanvasAgg` directly (the Agg backend, never pyplot), so no GUI
 backend is chosen and no global figure list grows while a site of hundreds of pages is
-built. One figure per process is reused from chart to chart: the fixed parts (frame, value
-axis) are made once, and each chart adds and then removes its own artists. matplotlib's
-tick machinery is not used at all; the axes are drawn as plain lines and labels. Together
-that roughly halves the time per chart, which is what a site build spends its time on.
+built. One figure per process is reused from chart to chart: the frame is made once, and
+each chart adds and then removes its own artists. matplotlib's axis objects are not drawn;
+the ticks come from `monitor.chart_axes` (the value range fitted to the data and levels,
+date ticks from matplotlib's `AutoDateLocator` and `ConciseDateFormatter`, the same as the
+digest's PNG charts) and are drawn as plain lines and labels. That roughly halves the time
+per chart, which is what a site build spends its time on.
 
 Output is deterministic: ``svg.hashsalt`` is fixed, so the ids matplotlib writes inside the
 SVG do not change from run to run, and the ``Date`` metadata is dropped; the same request
@@ -41,6 +43,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 
+from monitor import chart_axes
 from monitor._typing import Float1D
 
 WIDTH_IN = 7.2
@@ -71,15 +74,12 @@ HISTORY_CHART_KEY = (
 )
 """The chart's key in words, printed under every chart instead of a legend."""
 
-_MONTHS = ("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec")
-_Y_TICKS = (-1.0, -0.5, 0.0, 0.5, 1.0)
-_MINUS = "\u2212"
 _AXES_BOX = (0.075, 0.13, 0.91, 0.74)
-# Bytes of this very file: part of every chart's cache key, so a change to how charts are
-# drawn (or a new matplotlib) makes every cached chart stale.
+# Bytes of this very file and of the shared axes: part of every chart's cache key, so a
+# change to how charts are drawn (or a new matplotlib) makes every cached chart stale.
 def _code_stamp() -> str:
     try:
-        code = Path(__file__).read_bytes()
+        code = Path(__file__).read_bytes() + Path(chart_axes.__file__).read_bytes()
     except OSError:  # installed without sources: the version numbers must do
         code = b""
     return hashlib.sha256(code + matplotlib.__version__.encode()).hexdigest()
@@ -204,54 +204,6 @@ class HistoryChartRequest:
         return digest.hexdigest()
 
 
-def date_ticks(first: np.datetime64, last: np.datetime64) -> list[tuple[np.datetime64, str]]:
-    """Tick positions and labels for a date axis from `first` to `last` (inclusive).
-
-    Parameters
-    ----------
-    first, last : numpy.datetime64
-        Ends of the axis, day resolution, ``first <= last``.
-
-    Returns
-    -------
-    list of (datetime64[D], str)
-        Month starts (every month up to 14 months, every quarter up to 4 years, else every
-        January), or Mondays for spans under 60 days ("Mar 2", "Mar 9"). With month
-        ticks, a year is written on the first tick and on each January ("Jan 2026").
-    """
-    span = int((last - first).astype(np.int64))
-    if span < 60:
-        # 1970-01-05 was a Monday: step from there so ticks fall on Mondays.
-        monday = np.datetime64("1970-01-05", "D")
-        offset = -(-int((first - monday).astype(np.int64)) // 7) * 7
-        days = np.arange(monday + np.timedelta64(offset, "D"), last + np.timedelta64(1, "D"),
-                         np.timedelta64(7, "D"))
-        labels = []
-        for day in days:
-            month = int(day.astype("datetime64[M]").astype(np.int64)) % 12
-            labels.append((day, f"{_MONTHS[month]} {int(str(day)[8:10])}"))
-        return labels
-    step = 1 if span <= 14 * 31 else 3 if span <= 4 * 366 else 12
-    months = np.arange(first.astype("datetime64[M]"),
-                       last.astype("datetime64[M]") + np.timedelta64(1, "M"))
-    months = months[(months.astype(np.int64) % step) == 0]
-    ticks: list[tuple[np.datetime64, str]] = []
-    for month in months:
-        day = month.astype("datetime64[D]")
-        if first <= day <= last:
-            year, index = divmod(int(month.astype(np.int64)), 12)
-            label = _MONTHS[index]
-            if not ticks or index == 0:
-                label += f" {1970 + year}"
-            ticks.append((day, label))
-    return ticks
-
-
-def _signed(value: float) -> str:
-    text = f"{value:.1f}"
-    return _MINUS + text[1:] if text.startswith("-") else text
-
-
 class _Painter:
     """One reusable figure; `draw` adds a chart's artists, saves, and removes them."""
 
@@ -260,12 +212,6 @@ class _Painter:
         FigureCanvasAgg(self.figure)
         self.axes = self.figure.add_axes(_AXES_BOX)
         self.axes.set_axis_off()
-        self.axes.set_ylim(-1.05, 1.05)
-        self.y_labels = [
-            self.axes.text(0.0, tick, _signed(tick), ha="right", va="center", fontsize=7,
-                           color=MUTED, parse_math=False)
-            for tick in _Y_TICKS
-        ]
 
     def draw(self, request: HistoryChartRequest) -> bytes:
         axes = self.axes
@@ -278,20 +224,36 @@ class _Painter:
                 left, right = left - 1.0, right + 1.0
         else:
             left, right = 0.0, 1.0
+        # The value axis fits the values, the band and the levels (monitor.chart_axes).
+        bottom, top = chart_axes.value_limits(
+            (request.values, request.band_low, request.band_high), request.levels)
         axes.set_xlim(left, right)
-        for label in self.y_labels:
-            label.set_x(left - 0.01 * (right - left))
+        axes.set_ylim(bottom, top)
+        y_ticks = chart_axes.value_ticks(bottom, top)
         added: list[Artist] = []
-        grid = [[(left, tick), (right, tick)] for tick in _Y_TICKS]
+        label_x = left - 0.01 * (right - left)
+        for tick in y_ticks:
+            added.append(axes.text(label_x, tick, chart_axes.value_label(tick, y_ticks),
+                                   ha="right", va="center", fontsize=7, color=MUTED,
+                                   parse_math=False, clip_on=False))
+        grid = [[(left, tick), (right, tick)] for tick in y_ticks]
+        below = bottom - 0.025 * (top - bottom)
         if x.size:
-            for day, text in date_ticks(x_days[0], x_days[-1]):
+            dates = chart_axes.date_ticks(x_days[0], x_days[-1])
+            for day, text in dates.ticks:
                 position = float(day.astype(np.int64))
-                grid.append([(position, -1.05), (position, 1.05)])
-                added.append(axes.text(position, -1.1, text, ha="center", va="top", fontsize=7,
-                                       color=MUTED, parse_math=False, clip_on=False))
+                grid.append([(position, bottom), (position, top)])
+                added.append(axes.text(position, below, text, ha="center", va="top",
+                                       fontsize=7, color=MUTED, parse_math=False,
+                                       clip_on=False))
+            if dates.offset:
+                added.append(axes.text(right, top, dates.offset, ha="right", va="bottom",
+                                       fontsize=7, color=MUTED, parse_math=False,
+                                       clip_on=False))
         added.append(axes.add_collection(LineCollection(grid, colors=GRID, linewidths=0.5)))
-        added.append(axes.add_collection(
-            LineCollection([[(left, 0.0), (right, 0.0)]], colors=MUTED, linewidths=0.5)))
+        if bottom < 0.0 < top:
+            added.append(axes.add_collection(
+                LineCollection([[(left, 0.0), (right, 0.0)]], colors=MUTED, linewidths=0.5)))
         if x.size:
             for span in request.spans:
                 start = float(np.datetime64(span.start, "D").astype(np.int64))
@@ -370,7 +332,8 @@ def history_chart(
     -------
     SvgChart
         A 7.2 x 2.4 inch SVG, shown at `CHART_WIDTH` x `CHART_HEIGHT` CSS pixels, y axis
-        from -1 to 1. Its line styles are described in words by `HISTORY_CHART_KEY`.
+        fitted to the values, band and levels (`monitor.chart_axes.value_limits`). Its line styles
+        are described in words by `HISTORY_CHART_KEY`.
 
     Raises
     ------
@@ -426,7 +389,6 @@ __all__ = [
     "ChartSpan",
     "HistoryChartRequest",
     "SvgChart",
-    "date_ticks",
     "history_chart",
     "render_history_charts",
     "render_request",

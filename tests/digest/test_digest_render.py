@@ -654,6 +654,19 @@ def test_alert_chart_draws_nan_gaps_and_is_byte_for_byte_repeatable() -> None:
     assert blank.png.startswith(png_charts.PNG_SIGNATURE)
 
 
+def test_charts_are_8_bit_palette_pngs_a_third_the_size_of_full_colour_ones() -> None:
+    history = _history()
+    args = (history.dates, history.values, history.band_low, history.band_high)
+    image = png_charts.alert_history_chart(*args, level=0.8, clear_level=0.7, start=AS_OF)
+    bit_depth, colour_type = image.png[24], image.png[25]  # IHDR, after width and height
+    assert (bit_depth, colour_type) == (8, 3)  # 8-bit indexed colour (PNG spec, 11.2.2)
+    full = io.BytesIO()
+    png_charts.alert_history_figure(*args, level=0.8, clear_level=0.7, start=AS_OF).savefig(
+        full, format="png", dpi=png_charts.DPI)
+    assert png_charts.png_size(full.getvalue()) == png_charts.png_size(image.png)
+    assert len(image.png) < 0.5 * len(full.getvalue())
+
+
 def test_cluster_order_puts_two_interleaved_blocks_together() -> None:
     # Members of block A at even positions, block B at odd ones: r = 0.8 within a block,
     # 0.1 across. Any good ordering makes each block contiguous.
