@@ -1,8 +1,9 @@
 """The desk's calendar: which dates are run dates, and the `[schedule]` settings.
 
-Pure: no clock, no disk except the holidays file named in the settings, no scheduling
-library. Every caller that asks "is this a business day?" or "which run dates were missed?"
-(the daily run's catch-up, the scheduler's trigger, the data-feed check) asks here, so the
+Pure: no clock, no disk except the holidays file named in the settings (and the session
+tables shipped inside the exchange_calendars package), no scheduling library. Every caller
+that asks "is this a business day?" or "which run dates were missed?" (the daily run's
+catch-up, the scheduler's trigger, the data-feed check) asks here, so the
 configured days and holidays are honoured everywhere alike.
 """
 
@@ -10,8 +11,11 @@ from __future__ import annotations
 
 import datetime as dt
 import difflib
+import functools
 import re
-from collections.abc import Mapping
+import warnings
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -41,6 +45,12 @@ SCHEDULE_KEYS: Mapping[str, tuple[object, str]] = {
         None,
         "Text file of holiday dates, one YYYY-MM-DD per line, '#' starts a comment; a "
         "relative path is resolved against the settings file's folder.",
+    ),
+    "calendar": (
+        None,
+        "Exchange calendar code (as the exchange_calendars package names it, e.g. 'XNYS' or "
+        "'XLON'): its holidays are added to `holidays`, within the years the package "
+        "covers (about twenty back, one ahead).",
     ),
 }
 """Every `[schedule]` key: its default and help text, for the settings documentation."""
@@ -207,36 +217,138 @@ def parse_schedule(raw: Mapping[str, Any], *, desk_timezone: str, base_dir: Path
     """
     if not isinstance(raw, Mapping):
         raise ConfigError(f"schedule: expected a table, got {raw!r}")
+    problems: list[str] = []
+
+    def read(key: str, parse: Any, default: Any) -> Any:
+        if key not in raw:
+            return default
+        try:
+            return parse(raw[key])
+        except ConfigError as exc:
+            problems.append(str(exc))
+            return default
+
     for key in raw:
         if key not in SCHEDULE_KEYS:
             near = difflib.get_close_matches(str(key), list(SCHEDULE_KEYS), n=1)
             valid = ", ".join(SCHEDULE_KEYS)
             hint = f"did you mean {near[0]!r}?" if near else f"valid keys: {valid}"
-            raise ConfigError(f"schedule.{key}: unknown key; {hint}")
+            problems.append(f"schedule.{key}: unknown key; {hint}")
 
-    days = _parse_days(raw["days"]) if "days" in raw else DEFAULT_DAYS
-    time = _parse_time(raw["time"]) if "time" in raw else DEFAULT_TIME
-    if "timezone" in raw:
-        _zone(raw["timezone"], "schedule.timezone")
-        timezone = raw["timezone"]
-    else:
-        _zone(desk_timezone, "desk.timezone")
-        timezone = desk_timezone
+    days = read("days", _parse_days, DEFAULT_DAYS)
+    time = read("time", _parse_time, DEFAULT_TIME)
+    timezone = desk_timezone
+    zone_key = "schedule.timezone" if "timezone" in raw else "desk.timezone"
+    try:
+        _zone(raw.get("timezone", desk_timezone), zone_key)
+        timezone = raw.get("timezone", desk_timezone)
+    except ConfigError as exc:
+        problems.append(str(exc))
+        timezone = "UTC"
+    holidays = read("holidays", _parse_holiday_list, frozenset())
+    if raw.get("holidays_file") is not None:
+        holidays = holidays | read("holidays_file", lambda name: _read_named_file(name, base_dir),
+                                   frozenset())
+    if raw.get("calendar") is not None:
+        code = read("calendar", lambda code: check_exchange_code(code, "schedule.calendar"), None)
+        if code is not None:
+            holidays = holidays | exchange_holidays(code, days)
+    if problems:
+        first = problems[0]
+        more = f" (and {len(problems) - 1} more: `comove check` lists them all)"
+        raise ConfigError(first + (more if len(problems) > 1 else ""), problems)
+    return Schedule(days=days, time=time, timezone=timezone, holidays=frozenset(holidays))
 
-    holidays: set[dt.date] = set()
-    listed = raw.get("holidays", [])
+
+def _parse_holiday_list(listed: object) -> frozenset[dt.date]:
     if isinstance(listed, str) or not isinstance(listed, list | tuple):
         raise ConfigError(f"schedule.holidays: {listed!r} is not a list of dates YYYY-MM-DD")
-    for i, item in enumerate(listed):
-        holidays.add(_parse_date(item, f"schedule.holidays[{i}]"))
-    if raw.get("holidays_file") is not None:
-        name = raw["holidays_file"]
-        if not isinstance(name, str) or not name.strip():
-            raise ConfigError(f"schedule.holidays_file: {name!r} is not a file path")
-        path = Path(name)
-        holidays |= read_holidays_file(path if path.is_absolute() else base_dir / path)
+    return frozenset(_parse_date(item, f"schedule.holidays[{i}]") for i, item in enumerate(listed))
 
-    return Schedule(days=days, time=time, timezone=timezone, holidays=frozenset(holidays))
+
+def _read_named_file(name: object, base_dir: Path) -> frozenset[dt.date]:
+    if not isinstance(name, str) or not name.strip():
+        raise ConfigError(f"schedule.holidays_file: {name!r} is not a file path")
+    path = Path(name)
+    return read_holidays_file(path if path.is_absolute() else base_dir / path)
+
+
+# --- exchange calendars ------------------------------------------------------------------
+# The exchange_calendars package knows the sessions of about a hundred exchanges, by their
+# ISO 10383 market identifier codes (and a few aliases). It is imported only when a code is
+# used (the import takes about half a second), and its own deprecation warnings are kept
+# out of comove's output.
+
+
+@contextmanager
+def _quiet() -> Iterator[None]:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        yield
+
+
+@functools.cache
+def exchange_codes() -> tuple[str, ...]:
+    """Every exchange calendar code the installed exchange_calendars package knows."""
+    with _quiet():
+        import exchange_calendars
+
+        return tuple(sorted(exchange_calendars.get_calendar_names(include_aliases=True)))
+
+
+def code_hint(code: str) -> str:
+    """'close matches: ...' naming up to four known codes nearest to `code`, or examples."""
+    codes = exchange_codes()
+    near = difflib.get_close_matches(code.upper(), codes, n=4, cutoff=0.5)
+    if near:
+        return "close matches: " + ", ".join(near)
+    return "codes look like XNYS, XLON, XTKS"
+
+
+def check_exchange_code(code: object, key: str) -> str:
+    """Return `code` when it names an exchange calendar, else a one-line ConfigError
+    listing the close matches."""
+    if not isinstance(code, str) or not code.strip():
+        raise ConfigError(f"{key}: {code!r} is not an exchange calendar code such as 'XNYS'")
+    if code in exchange_codes():
+        return code
+    raise ConfigError(f"{key}: {code!r} is not an exchange calendar code; {code_hint(code)}")
+
+
+@functools.cache
+def _sessions(code: str) -> tuple[frozenset[dt.date], dt.date, dt.date]:
+    """The calendar's session dates and the first and last date it covers."""
+    with _quiet():
+        import exchange_calendars
+
+        calendar = exchange_calendars.get_calendar(code)
+        sessions = frozenset(day.date() for day in calendar.sessions)
+        return sessions, calendar.first_session.date(), calendar.last_session.date()
+
+
+def exchange_holidays(code: str, days: tuple[str, ...] = DEFAULT_DAYS) -> frozenset[dt.date]:
+    """Dates on the given weekdays, within the calendar's span, with no session."""
+    sessions, first, last = _sessions(code)
+    wanted = {DAY_NAMES.index(day) for day in days}
+    span = (first + dt.timedelta(days=i) for i in range((last - first).days + 1))
+    return frozenset(day for day in span if day.weekday() in wanted and day not in sessions)
+
+
+def exchange_open(code: str, day: dt.date) -> bool:
+    """True when the exchange has a session on `day`; outside the calendar's span, a
+    weekday counts as open (nothing is known)."""
+    sessions, first, last = _sessions(code)
+    if first <= day <= last:
+        return day in sessions
+    return day.weekday() < 5
+
+
+def any_market_open(calendars: Sequence[str], day: dt.date) -> bool:
+    """True unless every instrument has an exchange calendar and all of them are shut on
+    `day` (an instrument without a calendar counts as open on every run date)."""
+    if not calendars or any(not code for code in calendars):
+        return True
+    return any(exchange_open(code, day) for code in dict.fromkeys(calendars))
 
 
 def require_aware(moment: dt.datetime, name: str) -> dt.datetime:

@@ -79,7 +79,7 @@ def add_format_option(parser: argparse.ArgumentParser) -> None:
 def load(args: argparse.Namespace) -> Any:
     from monitor.config import load_settings
 
-    return load_settings(args.config)
+    return load_settings(getattr(args, "config", None))
 
 
 def print_frame(frame: pd.DataFrame, fmt: str = "table") -> None:
@@ -94,19 +94,56 @@ def print_frame(frame: pd.DataFrame, fmt: str = "table") -> None:
         print(frame.to_string(index=False, na_rep="-"))
 
 
-# --- init -------------------------------------------------------------------------------
+# --- init and check ------------------------------------------------------------------------
 
 
-@command("init", "Create the store (idempotent) and record the configured instruments.")
+def _init_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--example", action="store_true",
+                        help="first write a commented settings file (rules and schedule "
+                             "included) at the --config path, else ./comove.toml; an "
+                             "existing file is never overwritten")
+
+
+@command("init", "Create the store (idempotent) and record the configured instruments.",
+         _init_args)
 def _init(args: argparse.Namespace) -> int:
     from monitor.pipeline import init_store
 
+    if args.example:
+        _write_example(getattr(args, "config", None))
     settings = load(args)
     store = init_store(settings)
     print(f"store ready: {store.url}")
     print(f"inbox: {settings.inbox}")
     print(f"instruments configured: {len(settings.instruments)}")
     return 0
+
+
+def _write_example(explicit: str | None) -> None:
+    from monitor.config import find_settings_file
+    from monitor.templating import config_dir
+
+    target = find_settings_file(explicit)
+    if target.exists():
+        raise ComoveError(f"{target} already exists; --example never overwrites a settings "
+                          "file (remove it or give another --config PATH)")
+    target.parent.mkdir(parents=True, exist_ok=True)
+    text = (config_dir() / "comove.example.toml").read_text(encoding="utf-8")
+    with open(target, "x", encoding="utf-8") as out:  # "x": never over a file made meanwhile
+        out.write(text)
+    print(f"example settings written to {target}: edit the desk, instruments and rules")
+
+
+@command("check", "Check the whole settings file (rules and schedule included): print the "
+         "resolved settings and every problem at once; exit 1 when there is any.")
+def _check(args: argparse.Namespace) -> int:
+    from monitor.config import inspect_settings
+    from monitor.settings_report import describe_check
+
+    checked = inspect_settings(getattr(args, "config", None))
+    for line in describe_check(checked):
+        print(line)
+    return 1 if checked.problems else 0
 
 
 # --- ingest -----------------------------------------------------------------------------
@@ -557,22 +594,39 @@ def build_parser() -> argparse.ArgumentParser:
                     "not investment advice.",
     )
     parser.add_argument("--version", action="version", version=f"comove {__version__}")
-    common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--config", metavar="PATH",
-                        help="settings file (default: $COMOVE_CONFIG, else ./comove.toml)")
+    _add_global_options(parser, config=True)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
     for cmd in COMMANDS.values():
-        child = sub.add_parser(cmd.name, help=cmd.help, description=cmd.help,
-                               parents=[common] if cmd.needs_config else [])
+        child = sub.add_parser(cmd.name, help=cmd.help, description=cmd.help)
+        _add_global_options(child, config=cmd.needs_config)
         cmd.configure(child)
         child.set_defaults(handler=cmd.handler)
     return parser
 
 
+def _add_global_options(parser: argparse.ArgumentParser, *, config: bool) -> None:
+    """`--config`, `-q` and `-v`, accepted before or after the command: the main parser and
+    each command's parser know them, and SUPPRESS keeps a command's parser from overwriting
+    a value given before the command."""
+    if config:
+        parser.add_argument("--config", metavar="PATH", default=argparse.SUPPRESS,
+                            help="settings file (default: $COMOVE_CONFIG, else ./comove.toml)")
+    parser.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS,
+                        help="print results and warnings only, no progress lines")
+    parser.add_argument("-v", "--verbose", action="store_true", default=argparse.SUPPRESS,
+                        help="also print debugging detail")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    import logging
+
     parser = build_parser()
     args = parser.parse_args(argv)
-    console_logging()
+    quiet, verbose = getattr(args, "quiet", False), getattr(args, "verbose", False)
+    if quiet and verbose:
+        parser.error("-q and -v cannot be used together")
+    console_logging(level=logging.WARNING if quiet else logging.DEBUG if verbose
+                    else logging.INFO)
     try:
         return int(args.handler(args))
     except (ComoveError, StoreError) as exc:

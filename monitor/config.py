@@ -145,6 +145,16 @@ class SourcesSettings:
     )
 
 
+def _exchange_code(value: Any) -> str | None:
+    if value == "":
+        return None
+    from monitor.calendar import code_hint, exchange_codes
+
+    if value in exchange_codes():
+        return None
+    return f"an exchange calendar code ({code_hint(value)})"
+
+
 @dataclass(frozen=True)
 class InstrumentSettings:
     """[[instruments]]: one table per monitored instrument."""
@@ -154,7 +164,12 @@ class InstrumentSettings:
     name: str = setting("", "Readable name, shown in the digest and the pages.")
     group: str = setting("", "Group the instrument belongs to (rules and gauges use groups).")
     currency: str = setting("", "Currency of the close.")
-    calendar: str = setting("", "Free note on the instrument's trading calendar or close time.")
+    calendar: str = setting(
+        "", "Exchange calendar code of the instrument's market as the exchange_calendars "
+        "package names it (e.g. 'XNYS', 'XLON', 'XTKS'); empty: open on every run date. When "
+        "every instrument's market is shut, the day raises no data-feed alert.",
+        check=_exchange_code,
+    )
 
 
 def _level(value: Any) -> str | None:
@@ -390,95 +405,201 @@ def _suggest(key: str, valid: list[str]) -> str:
 
 
 def build_section(cls: type, raw: Any, path: str) -> Any:
-    """Validate one table against its dataclass; every error names the key path and value."""
+    """Validate one table against its dataclass; every error names the key path and value.
+
+    Raises
+    ------
+    ConfigError
+        Naming the first problem; `problems` lists every problem of the table.
+    """
+    built, problems = _section_and_problems(cls, raw, path)
+    if problems:
+        raise ConfigError(_summary(problems), problems)
+    return built
+
+
+def _section_and_problems(cls: type, raw: Any, path: str) -> tuple[Any, list[str]]:
+    """The section object (None when any key is wrong) and every problem of the table."""
     if not isinstance(raw, dict):
-        raise ConfigError(f"{path}: expected a table, got {raw!r}")
+        return None, [f"{path}: expected a table, got {raw!r}"]
     fields = {f.name: f for f in dataclasses.fields(cls)}
+    problems: list[str] = []
     if "password" in raw and "password_env" in fields:
-        raise ConfigError(
+        problems.append(
             f"{path}.password: a password in the settings file is refused; put it in an "
             f"environment variable and name that variable in {path}.password_env"
         )
     for key in raw:
-        if key not in fields:
-            raise ConfigError(f"{path}.{key}: unknown key; {_suggest(key, list(fields))}")
+        if key not in fields and key != "password":
+            problems.append(f"{path}.{key}: unknown key; {_suggest(key, list(fields))}")
     values: dict[str, Any] = {}
-    for name, fld in fields.items():
-        meta = fld.metadata
-        if name not in raw:
-            if fld.default is dataclasses.MISSING and fld.default_factory is dataclasses.MISSING:
-                raise ConfigError(f"{path}.{name}: required key is missing ({meta['help']})")
-            continue
-        value = raw[name]
-        expected = meta["type"]
-        if not _type_ok(value, expected):
-            raise ConfigError(f"{path}.{name}: {value!r} is not {_type_name(expected)}")
-        if isinstance(value, list):
-            item = meta.get("item")
-            for i, element in enumerate(value):
-                if item is not None and not _type_ok(element, item):
-                    raise ConfigError(
-                        f"{path}.{name}[{i}]: {element!r} is not {_type_name(item)}"
-                    )
-            value = tuple(value)
-        if meta["choices"] and value not in meta["choices"]:
-            raise ConfigError(
-                f"{path}.{name}: {value!r} is not one of " + ", ".join(meta["choices"])
-            )
-        check = meta["check"]
-        if check is not None:
-            problem = check(value)
-            if problem:
-                raise ConfigError(f"{path}.{name}: {raw[name]!r} is not {problem}")
-        values[name] = value
-    return cls(**values)
+    for fld in fields.values():
+        problem = _read_key(fld, raw, path, values)
+        if problem:
+            problems.append(problem)
+    if problems:
+        return None, problems
+    return cls(**values), []
 
 
-def parse_settings(data: Mapping[str, Any], *, path: Path | None = None,
-                   base_dir: Path | None = None) -> Settings:
-    """Validate an already parsed TOML document."""
+def _read_key(fld: dataclasses.Field[Any], raw: dict[str, Any], path: str,
+              values: dict[str, Any]) -> str | None:
+    """Check one key of a table into `values`; return its problem, if any."""
+    name, meta = fld.name, fld.metadata
+    if name not in raw:
+        if fld.default is dataclasses.MISSING and fld.default_factory is dataclasses.MISSING:
+            return f"{path}.{name}: required key is missing ({meta['help']})"
+        return None
+    value = raw[name]
+    expected = meta["type"]
+    if not _type_ok(value, expected):
+        return f"{path}.{name}: {value!r} is not {_type_name(expected)}"
+    if isinstance(value, list):
+        item = meta.get("item")
+        for i, element in enumerate(value):
+            if item is not None and not _type_ok(element, item):
+                return f"{path}.{name}[{i}]: {element!r} is not {_type_name(item)}"
+        value = tuple(value)
+    if meta["choices"] and value not in meta["choices"]:
+        return f"{path}.{name}: {value!r} is not one of " + ", ".join(meta["choices"])
+    check = meta["check"]
+    if check is not None:
+        problem = check(value)
+        if problem:
+            return f"{path}.{name}: {raw[name]!r} is not {problem}"
+    values[name] = value
+    return None
+
+
+MORE_PROBLEMS = "(and {count} more: `comove check` lists them all)"
+"""Appended to the first problem when the file has several."""
+
+
+def _summary(problems: list[str]) -> str:
+    if len(problems) == 1:
+        return problems[0]
+    return f"{problems[0]} " + MORE_PROBLEMS.format(count=len(problems) - 1)
+
+
+@dataclass(frozen=True)
+class SettingsCheck:
+    """The settings as far as they could be resolved, and every problem found.
+
+    `sections` holds each section that validated (a section with a problem is missing);
+    `settings` is None when there is any problem.
+    """
+
+    path: Path | None
+    base_dir: Path
+    sections: Mapping[str, Any]
+    problems: tuple[str, ...]
+    settings: Settings | None
+
+
+def check_settings(data: Mapping[str, Any], *, path: Path | None = None,
+                   base_dir: Path | None = None) -> SettingsCheck:
+    """Validate a parsed TOML document completely: every section, the instruments' exchange
+    calendars, the `[schedule]` and every `[[rules]]` table, collecting every problem."""
     where = path.name if path else "settings"
+    base = base_dir or (path.parent.resolve() if path else Path.cwd())
+    problems: list[str] = []
     for key in data:
         if key not in SECTIONS:
-            raise ConfigError(f"{where}: [{key}]: unknown section; {_suggest(key, list(SECTIONS))}")
+            problems.append(
+                f"{where}: [{key}]: unknown section; {_suggest(key, list(SECTIONS))}")
     sections: dict[str, Any] = {}
     for name, section in SECTIONS.items():
         raw = data.get(name, [] if section.array else {})
         if section.array:
             if not isinstance(raw, list):
-                raise ConfigError(f"{where}: {name}: expected [[{name}]] tables, got {raw!r}")
+                problems.append(f"{where}: {name}: expected [[{name}]] tables, got {raw!r}")
+                continue
             if section.raw:
-                for i, table in enumerate(raw):
-                    if not isinstance(table, dict):
-                        raise ConfigError(f"{where}: {name}[{i}]: expected a table")
-                sections[name] = tuple(dict(t) for t in raw)
-            else:
-                sections[name] = tuple(
-                    build_section(section.cls, table, f"{name}[{i}]")
-                    for i, table in enumerate(raw)
-                )
+                bad = [i for i, table in enumerate(raw) if not isinstance(table, dict)]
+                problems.extend(f"{where}: {name}[{i}]: expected a table" for i in bad)
+                if not bad:
+                    sections[name] = tuple(dict(t) for t in raw)
+                continue
+            items, failed = [], False
+            for i, table in enumerate(raw):
+                built, found = _section_and_problems(section.cls, table, f"{name}[{i}]")
+                problems.extend(found)
+                failed = failed or bool(found)
+                items.append(built)
+            if not failed:
+                sections[name] = tuple(items)
         elif section.raw:
-            sections[name] = dict(raw)
+            if isinstance(raw, dict):
+                sections[name] = dict(raw)
+            else:
+                problems.append(f"{where}: [{name}]: expected a table, got {raw!r}")
         else:
-            sections[name] = build_section(section.cls, raw, name)
-    settings = Settings(
-        path=path,
-        base_dir=base_dir or (path.parent.resolve() if path else Path.cwd()),
-        sections=sections,
-    )
-    _check_instruments(settings.instruments)
-    return settings
+            built, found = _section_and_problems(section.cls, raw, name)
+            problems.extend(found)
+            if built is not None:
+                sections[name] = built
+    if "instruments" in sections:
+        problems.extend(_instrument_problems(sections["instruments"]))
+    problems.extend(_raw_section_problems(sections, base))
+    settings = None
+    if not problems:
+        settings = Settings(path=path, base_dir=base, sections=sections)
+    return SettingsCheck(path=path, base_dir=base, sections=sections,
+                         problems=tuple(problems), settings=settings)
 
 
-def _check_instruments(items: tuple[InstrumentSettings, ...]) -> None:
+def parse_settings(data: Mapping[str, Any], *, path: Path | None = None,
+                   base_dir: Path | None = None) -> Settings:
+    """Validate an already parsed TOML document.
+
+    Raises
+    ------
+    ConfigError
+        Naming the first problem and counting the others (`problems` lists them all).
+    """
+    checked = check_settings(data, path=path, base_dir=base_dir)
+    if checked.settings is None:
+        raise ConfigError(_summary(list(checked.problems)), list(checked.problems))
+    return checked.settings
+
+
+def _instrument_problems(items: tuple[InstrumentSettings, ...]) -> list[str]:
+    problems = []
     seen: dict[str, int] = {}
     for i, inst in enumerate(items):
         if inst.symbol in seen:
-            raise ConfigError(
+            problems.append(
                 f"instruments[{i}].symbol: {inst.symbol!r} is already listed as "
                 f"instruments[{seen[inst.symbol]}]"
             )
-        seen[inst.symbol] = i
+        seen.setdefault(inst.symbol, i)
+    return problems
+
+
+def _raw_section_problems(sections: Mapping[str, Any], base_dir: Path) -> list[str]:
+    """The `[schedule]` and `[[rules]]` tables, checked by the modules that own them."""
+    from monitor.calendar import parse_schedule
+    from monitor.rules import rule_problems
+
+    problems: list[str] = []
+    desk = sections.get("desk")
+    if "schedule" in sections and desk is not None:
+        try:
+            parse_schedule(sections["schedule"], desk_timezone=desk.timezone, base_dir=base_dir)
+        except ConfigError as exc:
+            problems.extend(exc.problems)
+    correlation = sections.get("correlation")
+    instruments = sections.get("instruments", ())
+    if "rules" in sections and correlation is not None:
+        groups: dict[str, list[str]] = {}
+        for inst in instruments:
+            if inst.group and inst.symbol not in groups.get(inst.group, []):
+                groups.setdefault(inst.group, []).append(inst.symbol)
+        # With no instruments listed the store decides the symbols: kinds and keys only.
+        symbols = list(dict.fromkeys(inst.symbol for inst in instruments)) or None
+        problems.extend(rule_problems(sections["rules"], symbols=symbols, groups=groups,
+                                      default_measure=correlation.default_measure))
+    return problems
 
 
 def find_settings_file(explicit: str | os.PathLike[str] | None = None,
@@ -492,12 +613,14 @@ def find_settings_file(explicit: str | os.PathLike[str] | None = None,
     return Path(DEFAULT_FILE)
 
 
-def load_settings(explicit: str | os.PathLike[str] | None = None,
-                  environ: Mapping[str, str] | None = None) -> Settings:
+def read_settings_file(explicit: str | os.PathLike[str] | None = None,
+                       environ: Mapping[str, str] | None = None) -> tuple[Path, dict[str, Any]]:
+    """Find and parse the settings file (TOML only, nothing validated yet)."""
     path = find_settings_file(explicit, environ)
     if not path.is_file():
         raise ConfigError(
-            f"settings file {path} not found (give --config PATH or set {ENV_VAR})"
+            f"settings file {path} not found (give --config PATH or set {ENV_VAR}; "
+            "`comove init --example` writes a commented one)"
         )
     try:
         data = tomllib.loads(path.read_text(encoding="utf-8"))
@@ -505,7 +628,28 @@ def load_settings(explicit: str | os.PathLike[str] | None = None,
         raise ConfigError(f"{path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML: {exc}") from None
-    return parse_settings(data, path=path.resolve())
+    return path.resolve(), data
+
+
+def load_settings(explicit: str | os.PathLike[str] | None = None,
+                  environ: Mapping[str, str] | None = None) -> Settings:
+    """Read and validate the whole settings file, rules and schedule included.
+
+    Raises
+    ------
+    ConfigError
+        The file is missing or not TOML, or any key is wrong: the message names the first
+        problem and counts the rest (`comove check` prints them all).
+    """
+    path, data = read_settings_file(explicit, environ)
+    return parse_settings(data, path=path)
+
+
+def inspect_settings(explicit: str | os.PathLike[str] | None = None,
+                     environ: Mapping[str, str] | None = None) -> SettingsCheck:
+    """Every problem of the settings file at once, with what did resolve (`comove check`)."""
+    path, data = read_settings_file(explicit, environ)
+    return check_settings(data, path=path)
 
 
 @dataclass(frozen=True)

@@ -26,7 +26,11 @@ def _cell(text: str) -> str:
 def commands_reference() -> str:
     parser = build_parser()
     sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
-    lines: list[str] = []
+    lines: list[str] = [
+        "Global options, accepted before or after the command: `--config PATH` (settings "
+        "file; default `$COMOVE_CONFIG`, else `./comove.toml`), `-q` / `--quiet` (results "
+        "and warnings only), `-v` / `--verbose` (also debugging detail); `--version`.", ""]
+    globals_ = {"config", "quiet", "verbose"}
     for name, cmd in COMMANDS.items():
         child = sub.choices[name]
         usage = " ".join(child.format_usage().split())
@@ -35,6 +39,8 @@ def commands_reference() -> str:
         rows = []
         for action in child._actions:
             if action.help == argparse.SUPPRESS or isinstance(action, argparse._HelpAction):
+                continue
+            if action.dest in globals_:
                 continue
             flags = ", ".join(action.option_strings) or action.metavar or action.dest
             rows.append(f"| `{_cell(str(flags))}` | {_cell(action.help or '')} |")

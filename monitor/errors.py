@@ -8,7 +8,15 @@ class ComoveError(Exception):
 
 
 class ConfigError(ComoveError):
-    """The settings file has a bad key, value or structure."""
+    """The settings file has a bad key, value or structure.
+
+    `problems` holds every problem found when the whole file was checked (the message
+    names the first and counts the rest); a single problem when raised on its own.
+    """
+
+    def __init__(self, message: str, problems: list[str] | None = None) -> None:
+        super().__init__(message)
+        self.problems = problems if problems is not None else [message]
 
 
 class SpecError(ConfigError):

@@ -71,8 +71,11 @@ def setup_logging(
     return comove
 
 
-def console_logging(stream: TextIO | None = None) -> logging.Logger:
-    """Show comove's INFO messages as plain lines on `stream` (stdout by default).
+def console_logging(stream: TextIO | None = None, *,
+                    level: int = logging.INFO) -> logging.Logger:
+    """Show comove's messages from `level` up as plain lines on `stream` (stdout by default).
+
+    The command line passes INFO, WARNING for `-q` and DEBUG for `-v`.
 
     What the shell commands print while they work (ingested files, backfill and demo
     progress, the daily run's summary) goes through the "comove" logger; this is the
@@ -85,6 +88,6 @@ def console_logging(stream: TextIO | None = None) -> logging.Logger:
     handler.setFormatter(logging.Formatter("%(message)s"))
     setattr(handler, _OUR_HANDLER, True)
     comove.addHandler(handler)
-    comove.setLevel(logging.INFO)
+    comove.setLevel(level)
     comove.propagate = False
     return comove

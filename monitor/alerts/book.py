@@ -40,7 +40,7 @@ from __future__ import annotations
 import datetime
 import functools
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Literal, NamedTuple
 
@@ -151,7 +151,7 @@ _BOOL_COLUMNS = ("is_open", "announced")
 class _RuleState:
     """Dense per-target arrays of one rule plus the sorted indices that are active."""
 
-    def __init__(self, labels: tuple[str, ...]) -> None:
+    def __init__(self, labels: Sequence[str]) -> None:
         size = len(labels)
         self.labels = labels
         self.size = size

@@ -138,6 +138,20 @@ def _feed_alert(store: Store, settings: Settings, as_of: dt.date, last_close: dt
     return problem
 
 
+def market_closed_reason(settings: Settings, day: dt.date) -> str:
+    """Why no closes are expected on `day` ('' when they are): not a run date of the
+    schedule (a weekend, a listed holiday, a holiday of `[schedule] calendar`), or every
+    instrument's exchange calendar is shut (a New Year's Day)."""
+    from monitor.calendar import any_market_open
+
+    if not schedule_of(settings).is_run_date(day):
+        return "not a run date of the schedule"
+    calendars = [inst.calendar for inst in settings.instruments]
+    if not any_market_open(calendars, day):
+        return "every instrument's market is shut (" + ", ".join(dict.fromkeys(calendars)) + ")"
+    return ""
+
+
 def _feed_event(opened: dt.date, day: dt.date, event: str,
                 last_close: dt.date | None) -> alerts_store.EventRow:
     held = (day - opened).days + 1
@@ -191,7 +205,11 @@ def run_daily(
             renew(store, owner)
             with store.connect() as conn:
                 last = closes_store.last_close_date(conn, as_of)
-            report.feed_problem = _feed_alert(store, settings, as_of, last)
+            closed = market_closed_reason(settings, as_of)
+            if closed and (last is None or last < as_of):
+                LOG.info("no data-feed check for %s: %s", as_of, closed)
+            else:
+                report.feed_problem = _feed_alert(store, settings, as_of, last)
             if last is not None:
                 report.evaluation = evaluate_range(store, settings, None, as_of, kind="evaluation",
                                                    now=lambda: dt.datetime.now(dt.UTC))

@@ -19,6 +19,7 @@ from monitor.rules.registry import (
     measures_needed,
     pairs_needed,
     rule_parameters,
+    rule_problems,
 )
 from monitor.rules.shift import ShiftRule
 from monitor.rules.sign import SignRule
@@ -52,6 +53,7 @@ __all__ = [
     "measures_needed",
     "pairs_needed",
     "rule_parameters",
+    "rule_problems",
     "take_pairs",
     "two_sided_p",
 ]

@@ -82,19 +82,57 @@ def build_rules(
     rules: list[Rule] = []
     seen: dict[str, int] = {}
     for index, table in enumerate(tables):
-        if not isinstance(table, Mapping):
-            raise ConfigError(f"rules[{index}]: expected a table, got {type(table).__name__}")
-        rule_class = _rule_class(table, index)
-        reader = TableReader(table, index, rule_class.parameters(), rule_class.kind)
-        reader.check_keys()
-        rule = rule_class.from_table(reader, universe, default_measure)
-        if rule.name in seen:
-            raise reader.error(
-                "name", f"duplicate rule name {rule.name!r} (also rules[{seen[rule.name]}])"
-            )
-        seen[rule.name] = index
+        rule = _build_one(table, index, universe, default_measure, seen)
+        assert rule is not None
         rules.append(rule)
     return rules
+
+
+def _build_one(table: object, index: int, universe: Universe | None,
+               default_measure: str | None, seen: dict[str, int]) -> Rule | None:
+    """One rule from its table; with no universe only its kind, keys and name are checked."""
+    if not isinstance(table, Mapping):
+        raise ConfigError(f"rules[{index}]: expected a table, got {type(table).__name__}")
+    rule_class = _rule_class(table, index)
+    reader = TableReader(table, index, rule_class.parameters(), rule_class.kind)
+    reader.check_keys()
+    if universe is None:
+        return None
+    rule = rule_class.from_table(reader, universe, default_measure)
+    if rule.name in seen:
+        raise reader.error(
+            "name", f"duplicate rule name {rule.name!r} (also rules[{seen[rule.name]}])"
+        )
+    seen[rule.name] = index
+    return rule
+
+
+def rule_problems(
+    tables: Sequence[object],
+    *,
+    symbols: Sequence[str] | None,
+    groups: Mapping[str, Sequence[str]],
+    default_measure: str | None = None,
+) -> list[str]:
+    """Every problem of the ``[[rules]]`` tables, one line each (at most one per rule).
+
+    With ``symbols`` None (no instruments listed: the store decides them at run time) only
+    each rule's kind and keys are checked; the targets are checked when the rules run.
+    """
+    universe = None
+    if symbols is not None:
+        try:
+            universe = Universe.build(symbols, groups)
+        except ConfigError as exc:
+            return [str(exc)]
+    problems: list[str] = []
+    seen: dict[str, int] = {}
+    for index, table in enumerate(tables):
+        try:
+            _build_one(table, index, universe, default_measure, seen)
+        except ConfigError as exc:
+            problems.append(str(exc))
+    return problems
 
 
 def measures_needed(rules: Sequence[Rule]) -> list[str]:
@@ -123,4 +161,5 @@ __all__ = [
     "measures_needed",
     "pairs_needed",
     "rule_parameters",
+    "rule_problems",
 ]

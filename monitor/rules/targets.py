@@ -9,8 +9,9 @@ pairs out of one day's arrays with a single ``np.take``.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import overload
 
 import numpy as np
 import numpy.typing as npt
@@ -75,11 +76,12 @@ class Targets:
 
     Attributes
     ----------
-    labels : tuple of str
-        ``"A/B"`` for pairs, the symbol for instruments, the group name for baskets.
+    labels : sequence of str
+        ``"A/B"`` for pairs (a lazy :class:`PairLabels`), the symbol for instruments, the
+        group name for baskets.
     """
 
-    labels: tuple[str, ...]
+    labels: Sequence[str]
     _positions: dict[str, int] = field(default_factory=dict, init=False, repr=False)
 
     def __len__(self) -> int:
@@ -87,6 +89,8 @@ class Targets:
 
     def position(self, label: str) -> int | None:
         """Index of a target label, or None when the rule does not watch it."""
+        if isinstance(self.labels, PairLabels):
+            return self.labels.position(label)
         if not self._positions:
             self._positions.update((name, k) for k, name in enumerate(self.labels))
         return self._positions.get(label)
@@ -170,8 +174,86 @@ def _canonical(pairs: IntArray, n_symbols: int) -> IntArray:
     return np.column_stack([codes // n_symbols, codes % n_symbols]).astype(np.int64)
 
 
-def _pair_labels(pairs: IntArray, symbols: Sequence[str]) -> tuple[str, ...]:
-    return tuple(f"{symbols[i]}/{symbols[j]}" for i, j in pairs.tolist())
+class PairLabels(Sequence[str]):
+    """The ``"A/B"`` labels of sorted canonical pairs, written only when asked for.
+
+    A rule over every pair of 3,000 instruments has 4.5 million targets; making all their
+    strings when the settings are loaded would take seconds and hundreds of megabytes, and
+    most commands never read them. Indexing formats one label; ``in`` and ``index`` look the
+    two symbols up and binary-search the pair codes.
+    """
+
+    def __init__(self, pairs: IntArray, symbols: Sequence[str]) -> None:
+        self._pairs = pairs
+        self._symbols = tuple(symbols)
+        self._n = len(self._symbols)
+        self._codes = pairs[:, 0] * self._n + pairs[:, 1]  # increasing: pairs are sorted
+        self._index: dict[str, int] | None = None
+
+    def __len__(self) -> int:
+        return int(self._pairs.shape[0])
+
+    @overload
+    def __getitem__(self, k: int) -> str: ...
+
+    @overload
+    def __getitem__(self, k: slice) -> list[str]: ...
+
+    def __getitem__(self, k: int | slice) -> str | list[str]:
+        if isinstance(k, slice):
+            return [self[i] for i in range(*k.indices(len(self)))]
+        i, j = self._pairs[k]
+        return f"{self._symbols[i]}/{self._symbols[j]}"
+
+    def __iter__(self) -> Iterator[str]:
+        symbols = self._symbols
+        for i, j in self._pairs.tolist():
+            yield f"{symbols[i]}/{symbols[j]}"
+
+    def position(self, label: object) -> int | None:
+        """Index of ``label``, or None when it is not one of these pairs."""
+        if not isinstance(label, str):
+            return None
+        if self._index is None:
+            self._index = {symbol: k for k, symbol in enumerate(self._symbols)}
+        # A symbol may itself contain '/': try every split point.
+        for cut in range(1, len(label) - 1):
+            if label[cut] != "/":
+                continue
+            i = self._index.get(label[:cut])
+            j = self._index.get(label[cut + 1:])
+            if i is None or j is None or i >= j:
+                continue
+            code = i * self._n + j
+            k = int(np.searchsorted(self._codes, code))
+            if k < self._codes.size and self._codes[k] == code:
+                return k
+        return None
+
+    def __contains__(self, label: object) -> bool:
+        return self.position(label) is not None
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, PairLabels | tuple | list):
+            return len(self) == len(other) and all(a == b for a, b in zip(self, other,
+                                                                         strict=True))
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        head = ", ".join(repr(label) for label in self[:3])
+        return f"PairLabels({len(self)} pairs: {head}{', ...' if len(self) > 3 else ''})"
+
+    def index(self, label: object, start: int = 0, stop: int | None = None) -> int:
+        k = self.position(label)
+        if k is None or k < start or (stop is not None and k >= stop):
+            raise ValueError(f"{label!r} is not a watched pair")
+        return k
+
+
+def _pair_labels(pairs: IntArray, symbols: Sequence[str]) -> PairLabels:
+    return PairLabels(pairs, symbols)
 
 
 def resolve_pairs(reader: TableReader, universe: Universe) -> PairTargets:

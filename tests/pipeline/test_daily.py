@@ -248,3 +248,35 @@ def test_run_starts_logs_its_next_fire_time_and_stops_on_sigterm(
     assert proc.returncode == 0
     assert (Path(settings.store_url.removeprefix("sqlite:///")).parent
             / "comove.log").is_file()
+
+
+def _feed_alerts(store: Store) -> list[alerts_store.AlertRow]:
+    with store.connect() as conn:
+        return alerts_store.list_alerts(conn, open_only=False, rule="data-feed")
+
+
+@pytest.mark.parametrize("shut", ["instrument calendars", "schedule calendar", "holiday"])
+def test_no_data_feed_alert_on_a_day_the_markets_are_shut(
+    tmp_path: Path, write_settings: Callable[..., Settings], shut: str
+) -> None:
+    calendars = {"instrument calendars": ("XNYS", "XLON"), "schedule calendar": ("", ""),
+                 "holiday": ("", "")}[shut]
+    schedule = {"instrument calendars": "", "schedule calendar": 'calendar = "XNYS"',
+                "holiday": 'holidays = ["2027-01-01"]'}[shut]
+    body = (f'[[instruments]]\nsymbol = "KLV"\ncalendar = "{calendars[0]}"\n'
+            f'[[instruments]]\nsymbol = "ORMA"\ncalendar = "{calendars[1]}"\n'
+            f'[schedule]\n{schedule}\n')
+    settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}", body)
+    store = init_store(settings)
+    history = tmp_path / "closes.csv"
+    history.write_text("date,symbol,close\n2026-12-30,KLV,100\n2026-12-30,ORMA,50\n"
+                       "2026-12-31,KLV,101\n2026-12-31,ORMA,51\n")
+    ingest_file(store, settings, history, today=dt.date(2026, 12, 31))
+    new_year = run_daily(store, settings, dt.date(2027, 1, 1), send=False)
+    assert new_year.status == "done" and new_year.feed_problem == ""
+    assert _feed_alerts(store) == []
+    # The next trading day without closes does raise it.
+    monday = run_daily(store, settings, dt.date(2027, 1, 4), send=False)
+    assert monday.feed_problem.startswith("no new closes for 2027-01-04")
+    assert [a.opened_on for a in _feed_alerts(store)] == [dt.date(2027, 1, 4)]
+    store.dispose()
