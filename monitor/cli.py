@@ -104,8 +104,8 @@ def _init_args(parser: argparse.ArgumentParser) -> None:
                              "existing file is never overwritten")
 
 
-@command("init", "Create the store (idempotent) and record the configured instruments.",
-         _init_args)
+@command("init", "Create the store (idempotent) or upgrade an older one in place, and "
+         "record the configured instruments.", _init_args)
 def _init(args: argparse.Namespace) -> int:
     from monitor.pipeline import init_store
 

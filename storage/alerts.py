@@ -309,6 +309,9 @@ class AlertRow:
     last_value: float | None
     last_on: dt.date | None
     announced: bool
+    retracted_on: dt.date | None = None
+    retracted_reason: str | None = None
+    retracted_batch: int | None = None
     acknowledged_by: str | None = None
     acknowledged_at: dt.datetime | None = None
     acknowledged_note: str | None = None

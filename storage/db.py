@@ -14,8 +14,10 @@ from sqlalchemy.exc import ArgumentError, OperationalError, SQLAlchemyError
 
 from storage.schema import metadata, schema_version
 
-SCHEMA_VERSION = 1
-"""Bumped whenever a table changes; a store at another version is refused at open."""
+SCHEMA_VERSION = 2
+"""Bumped whenever a table changes, with an Alembic revision in storage/migrations that
+brings an older store to it (`comove init` runs it); an older store is refused at open
+with that advice, a newer one with the advice to upgrade comove."""
 
 SQLITE_BUSY_TIMEOUT_MS = 30_000
 
@@ -108,14 +110,7 @@ def open_store(url: str, *, create: bool = False) -> Store:
     try:
         if create:
             with engine.begin() as conn:
-                metadata.create_all(conn)
-                current = conn.execute(select(func.max(schema_version.c.version))).scalar()
-                if current is None:
-                    conn.execute(
-                        schema_version.insert().values(
-                            version=SCHEMA_VERSION, applied_at=dt.datetime.now(dt.UTC)
-                        )
-                    )
+                _create_or_upgrade(conn)
         with engine.connect() as conn:
             initialised = inspect(conn).has_table("schema_version")
             found = (conn.execute(select(func.max(schema_version.c.version))).scalar()
@@ -130,10 +125,40 @@ def open_store(url: str, *, create: bool = False) -> Store:
     if not initialised:
         engine.dispose()
         raise StoreError(f"store {shown} is not initialised: run `comove init` first")
+    if found is not None and found < SCHEMA_VERSION:
+        engine.dispose()
+        raise StoreError(
+            f"store {shown} is at schema version {found}, this comove needs {SCHEMA_VERSION}: "
+            "back it up, then run `comove init` to upgrade it in place (closes, alerts and "
+            "acknowledgements are kept)"
+        )
     if found != SCHEMA_VERSION:
         engine.dispose()
         raise StoreError(
-            f"store {shown} is at schema version {found}, this comove needs {SCHEMA_VERSION}; "
-            "back it up and rebuild it with `comove init` on a new file, then re-ingest"
+            f"store {shown} is at schema version {found}, this comove knows up to "
+            f"{SCHEMA_VERSION}: it was written by a newer comove; upgrade comove"
         )
     return Store(engine=engine, url=shown)
+
+
+def _create_or_upgrade(conn: Connection) -> None:
+    """A new store gets every table and the newest revision; an older one is upgraded by
+    its migrations (all in the caller's transaction)."""
+    from storage import migrate
+
+    if not inspect(conn).has_table("schema_version"):
+        metadata.create_all(conn)
+        conn.execute(schema_version.insert().values(version=SCHEMA_VERSION,
+                                                    applied_at=dt.datetime.now(dt.UTC)))
+        migrate.stamp_head(conn)
+        return
+    found = conn.execute(select(func.max(schema_version.c.version))).scalar()
+    if found is None:  # the table exists but was never filled: a store cut off at creation
+        metadata.create_all(conn)
+        conn.execute(schema_version.insert().values(version=SCHEMA_VERSION,
+                                                    applied_at=dt.datetime.now(dt.UTC)))
+        migrate.stamp_head(conn)
+    elif found < SCHEMA_VERSION:
+        migrate.upgrade(conn, int(found))
+    elif migrate.current_revision(conn) is None:
+        migrate.stamp_head(conn)

@@ -116,6 +116,11 @@ alerts = Table(
     Column("last_value", Float, nullable=True),
     Column("last_on", Date, nullable=True),
     Column("announced", Boolean, nullable=False, default=True),
+    # Set when the alert is retracted: the day, why (e.g. the restatement), and the
+    # ingest batch that changed the closes (schema version 2).
+    Column("retracted_on", Date, nullable=True),
+    Column("retracted_reason", Text, nullable=True),
+    Column("retracted_batch", Integer, nullable=True),
     UniqueConstraint("rule", "target", "opened_on", name="uq_alert_key"),
 )
 
