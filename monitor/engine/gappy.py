@@ -127,18 +127,18 @@ def gappy_days(
         [right.mask[lo:hi], right.x[lo:hi], right.q[lo:hi]], axis=1
     )
     cols = shape[1]
-    gap_count = by_left_gaps[:, :cols]  # (I, J): common days the left's gaps remove
-    gap_right_x = by_left_gaps[:, cols : 2 * cols]  # G_L' X_R
-    gap_right_q = by_left_gaps[:, 2 * cols :]  # G_L' Q_R
+    # contiguous copies: each is read whole every day
+    gap_count = np.array(by_left_gaps[:, :cols])  # (I, J): common days the left's gaps remove
+    gap_right_x = np.array(by_left_gaps[:, cols : 2 * cols])  # G_L' X_R
+    gap_right_q = np.array(by_left_gaps[:, 2 * cols :])  # G_L' Q_R
     if symmetric:
         gap_left_x, gap_left_q = gap_right_x, gap_right_q  # (J, I) = the same matrices
     else:
         by_right_gaps = right.gap[lo:hi].T @ np.concatenate([left.x[lo:hi], left.q[lo:hi]], axis=1)
-        gap_left_x = by_right_gaps[:, : shape[0]]  # (J, I): G_R' X_L
-        gap_left_q = by_right_gaps[:, shape[0] :]
+        gap_left_x = np.array(by_right_gaps[:, : shape[0]])  # (J, I): G_R' X_L
+        gap_left_q = np.array(by_right_gaps[:, shape[0] :])
     cross = left.x[lo:hi].T @ right.x[lo:hi]
-    rank_two = np.empty(shape)
-    square = np.empty(shape)
+    buffers = _Buffers(shape, symmetric)
     no_stale = constant(False, shape, np.bool_)
     enough_floor = min_count * (1.0 - 1e-12)
     for c in range(b - a):
@@ -150,57 +150,56 @@ def gappy_days(
             if not symmetric:
                 _gap_rows(gap_left_x, left.x, right.gaps, enter, leave)
                 _gap_rows(gap_left_q, left.q, right.gaps, enter, leave)
-            np.matmul(
-                np.stack([left.x[enter], left.x[leave]], axis=1),
-                np.stack([right.x[enter], -right.x[leave]]),
-                out=rank_two,
-            )
-            cross += rank_two
+            buffers.pair_rows[:, 0] = left.x[enter]
+            buffers.pair_rows[:, 1] = left.x[leave]
+            buffers.pair_cols[0] = right.x[enter]
+            np.negative(right.x[leave], out=buffers.pair_cols[1])
+            np.matmul(buffers.pair_rows, buffers.pair_cols, out=buffers.rank_two)
+            cross += buffers.rank_two
         # n_ij = own count of j minus the days i misses (rows of gap_count: i's gaps)
         n = np.subtract(right.count[c][None, :], gap_count)
-        sum_right = np.subtract(right.total[c][None, :], gap_right_x)
-        var_right = np.subtract(right.squares[c][None, :], gap_right_q)
-        var_right *= n  # n * Syy
+        sum_right = np.subtract(right.total[c][None, :], gap_right_x, out=buffers.sum_right)
+        raw_right = np.subtract(right.squares[c][None, :], gap_right_q, out=buffers.raw_right)
+        raw_right *= n  # n * Syy
+        square = np.multiply(sum_right, sum_right, out=buffers.square)
+        var_right = np.subtract(raw_right, square, out=square)  # n * Syy - Sy^2
         if symmetric:
-            sum_left = sum_right.T
+            sum_left, raw_left, var_left = sum_right.T, raw_right.T, var_right.T
         else:
-            sum_left = np.subtract(left.total[c][:, None], gap_left_x.T)
-        # covariance term n * Sxy - Sx * Sy
-        value = np.multiply(n, cross)
-        np.multiply(sum_left, sum_right, out=square)
-        value -= square
-        # variance terms n * Syy - Sy^2 (and n * Sxx - Sx^2, its transpose when symmetric)
-        raw_right = var_right
-        np.multiply(sum_right, sum_right, out=square)
-        deviation_right = np.subtract(raw_right, square)
-        tiny_right = deviation_right <= STALE_RATIO * raw_right
-        if symmetric:
-            deviation_left, tiny_left = deviation_right.T, tiny_right.T
-        else:
-            raw_left = np.subtract(left.squares[c][:, None], gap_left_q.T)
+            sum_left = np.subtract(left.total[c][:, None], gap_left_x.T, out=buffers.sum_left)
+            raw_left = np.subtract(left.squares[c][:, None], gap_left_q.T, out=buffers.raw_left)
             raw_left *= n
-            np.multiply(sum_left, sum_left, out=square)
-            deviation_left = np.subtract(raw_left, square)
-            tiny_left = deviation_left <= STALE_RATIO * raw_left
-        with np.errstate(divide="ignore", invalid="ignore"):
-            np.sqrt(deviation_right, out=deviation_right)
-            np.divide(1.0, deviation_right, out=deviation_right)
-            if not symmetric:
-                np.sqrt(deviation_left, out=deviation_left)
-                np.divide(1.0, deviation_left, out=deviation_left)
-            value *= deviation_right
-            value *= deviation_left
+            var_left = np.multiply(sum_left, sum_left, out=buffers.var_left)
+            np.subtract(raw_left, var_left, out=var_left)
+        # a pair is flat when its variance is at most STALE_RATIO of the raw moment; one
+        # comparison of the extremes rules that out on almost every day
+        tiny = None
+        if not _clearly_moving(var_right, raw_right):
+            tiny = var_right <= STALE_RATIO * raw_right
+        if not symmetric and not _clearly_moving(var_left, raw_left):
+            tiny_left = var_left <= STALE_RATIO * raw_left
+            tiny = tiny_left if tiny is None else tiny | tiny_left
+        elif symmetric and tiny is not None:
+            tiny = tiny | tiny.T
+        value = np.multiply(n, cross)
+        # n * Sxy - Sx * Sy (the raw moments are not needed any more: reuse their buffer)
+        value -= np.multiply(sum_left, sum_right, out=buffers.raw_right)
+        # (n * Sxx - Sx^2) * (n * Syy - Sy^2), in the buffer of the sums (no longer needed)
+        scale = np.multiply(var_right, var_left, out=buffers.sum_left if not symmetric else
+                            buffers.sum_right)
+        if tiny is None and scale.min() > 0.0:
+            np.sqrt(scale, out=scale)
+            value /= scale
+        else:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                np.sqrt(scale, out=scale)
+                value /= scale
         np.clip(value, -1.0, 1.0, out=value)
-        flat = tiny_right | tiny_left
-        if flat_left[c].any():
-            flat[flat_left[c], :] = True
-        if flat_right[c].any():
-            flat[:, flat_right[c]] = True
+        flat = _flat_pairs(tiny, flat_left[c], flat_right[c], shape)
         # n_ij >= own count of i + own count of j - W: skip the check when that suffices
         least = left.count[c].min() + right.count[c].min() - window
         enough = None if least >= enough_floor else n >= enough_floor
-        any_flat = bool(flat.any())
-        if any_flat:
+        if flat is not None:
             stale = flat if enough is None else flat & enough
             value[flat] = np.nan
         else:
@@ -208,6 +207,44 @@ def gappy_days(
         if enough is not None:
             value[~enough] = np.nan
         yield value, n, stale
+
+
+class _Buffers:
+    """Work arrays of one tile, reused every day (only the outputs are fresh arrays)."""
+
+    def __init__(self, shape: tuple[int, ...], symmetric: bool) -> None:
+        rows, cols = shape
+        self.pair_rows = np.empty((rows, 2))
+        self.pair_cols = np.empty((2, cols))
+        self.rank_two = np.empty(shape)
+        self.sum_right = np.empty(shape)
+        self.raw_right = np.empty(shape)
+        self.square = np.empty(shape)
+        if not symmetric:
+            self.sum_left = np.empty(shape)
+            self.raw_left = np.empty(shape)
+            self.var_left = np.empty(shape)
+
+
+def _clearly_moving(variance: FloatArray, raw: FloatArray) -> bool:
+    """True when no pair's variance can be within STALE_RATIO of its raw moment."""
+    return bool(variance.min() > STALE_RATIO * raw.max())
+
+
+def _flat_pairs(
+    tiny: BoolArray | None, flat_left: BoolArray, flat_right: BoolArray, shape: tuple[int, ...]
+) -> BoolArray | None:
+    """Pairs with a flat side: tiny variance on the common days, or an instrument whose own
+    window values are all equal; None when there is none."""
+    rows_flat, cols_flat = bool(flat_left.any()), bool(flat_right.any())
+    if tiny is None and not rows_flat and not cols_flat:
+        return None
+    flat = np.zeros(shape, dtype=bool) if tiny is None else tiny
+    if rows_flat:
+        flat[flat_left, :] = True
+    if cols_flat:
+        flat[:, flat_right] = True
+    return flat if flat.any() else None
 
 
 def _gap_rows(
