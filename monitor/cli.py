@@ -82,16 +82,34 @@ def load(args: argparse.Namespace) -> Any:
     return load_settings(getattr(args, "config", None))
 
 
+def _plain_dates(frame: pd.DataFrame) -> pd.DataFrame:
+    """Dates as YYYY-MM-DD text (a time of day only where there is one)."""
+    out = frame.copy()
+    for col in out.columns:
+        values = out[col]
+        if pd.api.types.is_datetime64_any_dtype(values):
+            midnight = values.dropna().eq(values.dropna().dt.normalize()).all()
+            text = values.dt.strftime("%Y-%m-%d") if midnight else values.map(
+                lambda v: None if pd.isna(v) else v.isoformat())
+            out[col] = text.astype(object).where(values.notna(), None)
+        elif values.dtype == object:
+            out[col] = values.map(lambda v: v.isoformat() if isinstance(v, dt.date) else v)
+    return out
+
+
 def print_frame(frame: pd.DataFrame, fmt: str = "table") -> None:
-    """Print a frame as an aligned table, CSV or JSON records."""
+    """Print a frame as an aligned table ('-' for what is missing), CSV or JSON records
+    (dates as YYYY-MM-DD)."""
     if fmt == "csv":
-        sys.stdout.write(frame.to_csv(index=False))
+        sys.stdout.write(_plain_dates(frame).to_csv(index=False))
     elif fmt == "json":
-        sys.stdout.write(frame.to_json(orient="records", date_format="iso", indent=1) + "\n")
+        sys.stdout.write(_plain_dates(frame).to_json(orient="records", indent=1) + "\n")
     elif frame.empty:
         print("(none)")
     else:
-        print(frame.to_string(index=False, na_rep="-"))
+        plain = _plain_dates(frame)
+        shown = plain.astype(object).where(plain.notna(), "-")
+        print(shown.to_string(index=False))
 
 
 # --- init and check ------------------------------------------------------------------------
@@ -337,8 +355,14 @@ def _alerts(args: argparse.Namespace) -> int:
     frame = list_alerts(open_settings_store(settings), settings, open_only=not args.all,
                         since=args.since, pair=args.pair, rule=args.rule)
     if args.format == "table":
-        for col in ("value", "peak", "level"):
-            frame[col] = frame[col].map(lambda v: "-" if pd.isna(v) else f"{v:+.3f}")
+        from monitor.alerts.units import threshold_text, value_text
+
+        kinds = frame["kind"].tolist()
+        for col in ("value", "peak"):
+            frame[col] = [value_text(k, v) for k, v in zip(kinds, frame[col], strict=True)]
+        frame["threshold"] = [threshold_text(k, v)
+                              for k, v in zip(kinds, frame["threshold"], strict=True)]
+        frame = frame.drop(columns=["kind"])
     print_frame(frame, args.format)
     return 0
 
@@ -367,9 +391,14 @@ def _mute_args(parser: argparse.ArgumentParser) -> None:
     what.add_argument("--rule", metavar="NAME", help="mute every alert of this rule")
     what.add_argument("--pair", metavar="A/B", help="mute this pair (or group or symbol "
                       "target) under every rule")
+    parser.add_argument("--from", dest="from_on", type=_date, metavar="DATE",
+                        help="first day of the mute (default: today)")
     parser.add_argument("--until", type=_date, required=True, metavar="DATE",
                         help="last day of the mute (inclusive)")
     parser.add_argument("--reason", required=True, metavar="TEXT", help="kept with the mute")
+    parser.add_argument("--allow-past", action="store_true",
+                        help="accept days before today (muting history before a backfill; "
+                             "days already evaluated change only when replayed)")
 
 
 @command("mute", "Mute a rule or a pair until a date: conditions are still recorded, just "
@@ -379,30 +408,87 @@ def _mute(args: argparse.Namespace) -> int:
 
     settings = load(args)
     mute_id = mute(open_settings_store(settings), settings, rule=args.rule, pair=args.pair,
-                   until=args.until, reason=args.reason)
-    print(f"mute {mute_id}: {args.rule or args.pair} until {args.until}")
+                   until=args.until, reason=args.reason, from_on=args.from_on,
+                   allow_past=args.allow_past)
+    first = f" from {args.from_on}" if args.from_on else ""
+    print(f"mute {mute_id}: {args.rule or args.pair}{first} until {args.until} "
+          f"(comove unmute {mute_id} lifts it)")
+    if args.allow_past:
+        print("days already evaluated keep what they announced; `comove backfill --force` "
+              "replays them with this mute")
+    return 0
+
+
+def _mutes_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--all", action="store_true",
+                        help="also the mutes that have ended")
+    add_format_option(parser)
+
+
+@command("mutes", "List the mutes (active and coming; --all also the ended ones) with their "
+         "id, rule or target, days and reason.", _mutes_args)
+def _mutes(args: argparse.Namespace) -> int:
+    from monitor.pipeline import list_mutes, open_settings_store
+
+    settings = load(args)
+    frame = list_mutes(open_settings_store(settings), settings, include_ended=args.all)
+    print_frame(frame, args.format)
+    return 0
+
+
+def _unmute_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("id", type=int, help="mute id (see comove mutes)")
+
+
+@command("unmute", "Lift a mute from today on (its past days stay as they were; a mute that "
+         "has not started is removed).", _unmute_args)
+def _unmute(args: argparse.Namespace) -> int:
+    from monitor.pipeline import open_settings_store, unmute
+
+    settings = load(args)
+    print(unmute(open_settings_store(settings), settings, args.id))
+    return 0
+
+
+def _unack_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("id", type=int, help="alert id (see comove alerts)")
+
+
+@command("unack", "Withdraw an alert's acknowledgement: it needs attention again and its "
+         "reminders resume.", _unack_args)
+def _unack(args: argparse.Namespace) -> int:
+    from monitor.pipeline import open_settings_store, unacknowledge
+
+    settings = load(args)
+    alert = unacknowledge(open_settings_store(settings), settings, args.id)
+    print(f"alert {alert.id} ({alert.rule}, {alert.target}, opened {alert.opened_on}) is no "
+          f"longer acknowledged; state {alert.state}")
     return 0
 
 
 def _series_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("a", metavar="A", help="first instrument")
     parser.add_argument("b", metavar="B", help="second instrument")
-    parser.add_argument("--measure", required=True, metavar="SPEC",
-                        help="e.g. rolling:63, ewma:hl=21, ewma:lambda=0.94,mean=zero, rank:63")
+    parser.add_argument("--measure", action="append", metavar="SPEC",
+                        help="e.g. rolling:63, ewma:hl=21, ewma:lambda=0.94,mean=zero, rank:63 "
+                             "(repeatable; default: every measure of [correlation] measures)")
     parser.add_argument("--start", type=_date, metavar="DATE", help="first date printed")
     parser.add_argument("--end", type=_date, metavar="DATE",
                         help="last date printed (later closes are not read)")
     add_format_option(parser)
 
 
-@command("series", "Print one pair's measure from the store: date, value, band low, band "
-         "high and n.", _series_args)
+@command("series", "Print one pair's measures from the store: date, measure, value, band "
+         "low, band high and n.", _series_args)
 def _series(args: argparse.Namespace) -> int:
     from monitor.pipeline import open_settings_store, series
 
     settings = load(args)
-    frame = series(open_settings_store(settings), settings, args.a, args.b, args.measure,
-                   start=args.start, end=args.end)
+    store = open_settings_store(settings)
+    measures = args.measure or list(settings.correlation.measures)
+    frames = [series(store, settings, args.a, args.b, spec, start=args.start, end=args.end)
+              for spec in measures]
+    frame = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
     print_frame(frame, args.format)
     return 0
 

@@ -13,7 +13,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
 
-from sqlalchemy import Connection, and_, bindparam, delete, func, or_, select
+from sqlalchemy import Connection, and_, bindparam, delete, func, or_, select, update
 
 from storage.schema import acknowledgements, alert_events, alerts, evaluation_state, mutes
 
@@ -424,6 +424,27 @@ def add_mute(conn: Connection, *, rule: str | None, target: str | None, from_on:
 
 def list_mutes(conn: Connection) -> list[dict[str, Any]]:
     return [dict(r._mapping) for r in conn.execute(select(mutes).order_by(mutes.c.id)).all()]
+
+
+def get_mute(conn: Connection, mute_id: int) -> dict[str, Any] | None:
+    row = conn.execute(select(mutes).where(mutes.c.id == mute_id)).first()
+    return None if row is None else dict(row._mapping)
+
+
+def end_mute(conn: Connection, mute_id: int, until: dt.date) -> None:
+    """Make `until` the mute's last day (its earlier days stay muted in the history)."""
+    conn.execute(update(mutes).where(mutes.c.id == mute_id).values(until=until))
+
+
+def delete_mute(conn: Connection, mute_id: int) -> None:
+    conn.execute(delete(mutes).where(mutes.c.id == mute_id))
+
+
+def remove_acknowledgements(conn: Connection, alert_id: int) -> list[dict[str, Any]]:
+    """Delete every acknowledgement of an alert; return what was removed."""
+    removed = list_acknowledgements(conn, [alert_id])
+    conn.execute(delete(acknowledgements).where(acknowledgements.c.alert_id == alert_id))
+    return removed
 
 
 @dataclass(frozen=True)

@@ -29,7 +29,17 @@ from monitor.pipeline.publish import (
     render_digest_files,
     send_digest,
 )
-from monitor.pipeline.review import acknowledge, canonical_pair, list_alerts, mute, series
+from monitor.pipeline.review import (
+    acknowledge,
+    canonical_pair,
+    list_alerts,
+    list_mutes,
+    mute,
+    mute_state,
+    series,
+    unacknowledge,
+    unmute,
+)
 from monitor.pipeline.store import (
     FEED_RULE,
     desk_today,
@@ -70,8 +80,10 @@ __all__ = [
     "last_completed_daily",
     "latest_close_date",
     "list_alerts",
+    "list_mutes",
     "missed_days",
     "mute",
+    "mute_state",
     "open_settings_store",
     "pages_folder",
     "read_closes",
@@ -82,5 +94,7 @@ __all__ = [
     "schedule_of",
     "send_digest",
     "series",
+    "unacknowledge",
     "universe",
+    "unmute",
 ]
