@@ -29,9 +29,10 @@ from monitor._typing import ReturnKind
 from monitor.alerts.book import AlertBook, AlertEvent
 from monitor.alerts.replay import make_plan, replay
 from monitor.data.quality import stale_inputs
-from monitor.data.returns import closes_to_returns
-from monitor.engine import DEFAULT_LEVEL, Measure, fisher_band, one_day, parse_measure, stream
+from monitor.data.returns import DEFAULT_MAX_GAP, closes_to_returns
+from monitor.engine import DEFAULT_LEVEL, Measure, fisher_band, parse_measure, stream
 from monitor.engine.bands import check_level
+from monitor.engine.pairdates import stream_on_pair_dates
 from monitor.errors import ConfigError, EngineInputError, SpecError
 from monitor.rules.registry import build_rules
 
@@ -48,10 +49,6 @@ EVENT_COLUMNS = (
     "reminder", "rule_kind", "symbols",
 )
 """Columns of :func:`evaluate`."""
-
-_MATRIX_SHARE = 10
-"""Use the engine's (N, N) path when the pairs are at least 1/10 of all pairs (as the replay
-does, :attr:`monitor.alerts.replay.Plan.use_matrix`): it works in blocks and wins there."""
 
 
 def _fail(function: str, argument: str, message: str) -> ConfigError:
@@ -224,6 +221,7 @@ def returns(
     kind: ReturnKind = "log",
     horizon: int = 1,
     fill_limit: int = 0,
+    max_gap: int = DEFAULT_MAX_GAP,
 ) -> pd.DataFrame:
     """Returns of a closes panel, as the settings' ``[returns]`` section computes them.
 
@@ -233,18 +231,22 @@ def returns(
         Index: dates (DatetimeIndex or ``datetime.date``), ascending and unique; one numeric
         column of closes per symbol, NaN where there is no close; closes must be > 0.
     kind : {"log", "simple"}
-        ``log(c_t / c_{t-h})`` or ``c_t / c_{t-h} - 1``.
+        ``log(c_t / c_prev)`` or ``c_t / c_prev - 1``, ``c_prev`` the instrument's own
+        previous close (``h`` rows back for a horizon ``h``).
     horizon : int
         ``h >= 1``; above 1, non-overlapping h-day returns dated at the end of each span,
         counted back from the last row.
     fill_limit : int
         ``k >= 0``: a missing close is carried forward for at most k rows.
+    max_gap : int
+        ``g >= 1``: a return spans the days without a close back to the previous close when
+        that is at most ``g`` business days back; further back it is missing.
 
     Returns
     -------
     DataFrame (T - 1, N) for ``h = 1``, same columns and index labels as ``closes`` (from its
-    second row). NaN where either end of the span has no close: a missing close never
-    becomes a zero return.
+    second row). NaN on a date without a close, at the first close and after a gap longer
+    than ``max_gap``: a missing close never becomes a zero return.
 
     Raises
     ------
@@ -256,7 +258,9 @@ def returns(
         raise _fail("returns", "kind", f"{kind!r} is not one of 'log', 'simple'")
     horizon = _whole("returns", "horizon", horizon, 1)
     fill_limit = _whole("returns", "fill_limit", fill_limit, 0)
-    return closes_to_returns(closes, kind=kind, horizon=horizon, fill_limit=fill_limit)
+    max_gap = _whole("returns", "max_gap", max_gap, 1)
+    return closes_to_returns(closes, kind=kind, horizon=horizon, fill_limit=fill_limit,
+                             max_gap=max_gap)
 
 
 def correlations(
@@ -308,23 +312,15 @@ def correlations(
     first = 0 if start is None else _row(dates, start, name, "start", "left")
     stop = len(dates) if end is None else _row(dates, end, name, "end", "right")
     stop = max(first, stop)
-    size = len(symbols)
     days = stop - first
     value = np.empty((days, len(labels)))
     count = np.empty((days, len(labels)))
     stale = np.empty((days, len(labels)), dtype=bool)
     if len(labels):
-        use_matrix = len(labels) * _MATRIX_SHARE >= size * (size - 1) // 2
-        flat = index[:, 0] * size + index[:, 1]
-        results = stream(values, spec, pairs=None if use_matrix else index, start=first,
-                         stop=stop, level=confidence)
+        results = stream_on_pair_dates(values, spec, index, start=first, stop=stop,
+                                       level=confidence)
         for k, day in enumerate(results):
-            if use_matrix:
-                value[k] = np.take(day.value, flat)
-                count[k] = np.take(day.n, flat)
-                stale[k] = np.take(day.stale, flat)
-            else:
-                value[k], count[k], stale[k] = day.value, day.n, day.stale
+            value[k], count[k], stale[k] = day.value, day.n, day.stale
     # One band over the whole table: the same function the engine's day results use.
     low, high = fisher_band(value, count, confidence)
     return pd.DataFrame({
@@ -354,7 +350,8 @@ def matrix(
 
     Returns
     -------
-    DataFrame (N, N), index and columns the symbols. The diagonal is 1 (NaN for a column
+    DataFrame (N, N), index and columns the symbols; each pair on its own dates (the rows
+    where both have a return), as :func:`correlations` gives it. The diagonal is 1 (NaN for a column
     that did not move); NaN below the measure's minimum count of common returns.
 
     Raises
@@ -374,8 +371,16 @@ def matrix(
         if t < 0:
             raise _fail(name, "on", f"{on!r} is not a date of the returns ({dates[0].date()} "
                         f"to {dates[-1].date()})")
-    day = one_day(values, spec, t)
-    return pd.DataFrame(np.array(day.value), index=returns.columns, columns=returns.columns)
+    size = len(symbols)
+    first, second = np.triu_indices(size, k=1)
+    index = np.column_stack([first, second]).astype(np.int64)
+    day = next(stream_on_pair_dates(values[:t + 1], spec, index, start=t))
+    table = np.full((size, size), np.nan)
+    table[first, second] = table[second, first] = day.value
+    # The diagonal: 1 where the column moved in the window (as the engine's matrix has it).
+    diagonal = next(stream(values[:t + 1], spec, start=t)).value.diagonal()
+    table[np.arange(size), np.arange(size)] = diagonal
+    return pd.DataFrame(table, index=returns.columns, columns=returns.columns)
 
 
 def _group_tables(groups: object, symbols: Sequence[str]) -> dict[str, list[str]]:

@@ -114,10 +114,17 @@ class ReturnsSettings:
     )
     fill_limit: int = setting(
         0,
-        "Carry the last close forward over at most this many missing days (0: never; a "
-        "missing close then leaves that day's and the next day's return missing).",
+        "Carry the last close forward over at most this many missing days, giving zero "
+        "returns (0: never; a missing close then leaves only that day's return missing).",
         kind=int,
         check=_at_least(0),
+    )
+    max_gap: int = setting(
+        5,
+        "A return runs from the instrument's own previous close across days its market was "
+        "shut, if that close is at most this many business days back (else it is missing).",
+        kind=int,
+        check=_at_least(1),
     )
     suspect_move: float = setting(
         0.25,

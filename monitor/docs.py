@@ -75,7 +75,41 @@ def rules_reference() -> str:
     return "\n".join(lines).rstrip() + "\n"
 
 
+def returns_method() -> str:
+    """README Methods: how closes become returns and which dates a pair uses."""
+    from monitor.data.returns import DEFAULT_MAX_GAP
+
+    return f"""\
+- **Returns, not prices.** Correlations are computed on returns (`log` or `simple`,
+  `returns.kind`); two independent random walks often show a large correlation in price
+  levels (Yule 1926; Granger & Newbold 1974). A missing close never becomes a zero return
+  (unless `returns.fill_limit` carries the last close forward a few days).
+- **Each instrument from its own previous close.** A return runs from the instrument's
+  own previous close, across the days its market was shut, as long as that close is at
+  most `returns.max_gap` business days back (default {DEFAULT_MAX_GAP}; further back the
+  return is missing). So an instrument's returns are the same whichever other
+  instruments are loaded: a desk holding a future that trades on an equity market's
+  holidays does not take any return away from the equity pairs.
+- **Each pair on its own dates.** A pair uses the dates on which both of its instruments
+  have a return, and a window of W is W of those dates; on a date one side has no return
+  the pair keeps its last value. The rules, `comove series`, the digest and the pages all
+  compute a pair this way, so they show the same number on every date (a test checks it
+  on a panel of several calendars). The trade-off: after a holiday on one side, that
+  side's return spans two or more days while the other side's covers one (the other side's
+  return of the holiday itself is not used by the pair). Every close and the move over the
+  closure are kept, but the longer return carries a day the other side does not, which
+  pulls the window's correlation towards zero by about r / (2n) for each such date in a
+  window of n (0.007 at r = 0.9, n = 63; checked by simulation in
+  tests/engine/test_pairdates.py). Closes taken at different times of day are a separate
+  matter: `returns.horizon` (multi-day returns) lessens that bias.
+- **Standardised returns on own dates.** The volatility scaling of the statistical rules
+  runs over each instrument's own returns (days without a return are skipped, not
+  counted), so it too is the same in any panel.
+"""
+
+
 SECTIONS = {
+    "returns": returns_method,
     "commands": commands_reference,
     "settings": settings_reference,
     "rules": rules_reference,

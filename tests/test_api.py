@@ -52,39 +52,51 @@ def _wide(frame: pd.DataFrame, column: str) -> pd.DataFrame:
 # --- correlations ---------------------------------------------------------------------------
 
 
-def test_rolling_correlations_match_pandas_rolling_corr_with_gaps(panel: pd.DataFrame) -> None:
-    """Reference: pandas Series.rolling(30, min_periods=20).corr(other), to 1e-10."""
+def _on_own_dates(panel: pd.DataFrame, a: str, b: str, compute: Callable[[pd.DataFrame],
+                  pd.Series]) -> pd.Series:
+    """Reference layout: ``compute`` on the pair's own dates (the rows where both have a
+    return), laid back on every date, a date without both keeping the last own value."""
+    both = panel[[a, b]].dropna()
+    return compute(both).reindex(panel.index, method="ffill")
+
+
+def test_rolling_correlations_match_pandas_rolling_corr_on_each_pairs_dates(
+    panel: pd.DataFrame,
+) -> None:
+    """Reference: pandas Series.rolling(30, min_periods=20).corr(other) on the rows where
+    both have a return, to 1e-10."""
     pairs = [("KLV", "ORMA"), ("KLV", "BRAND"), ("TEZ10", "NIRA"), ("ORMA", "PELL")]
     frame = api.correlations(panel, "rolling:30,min=20", pairs=pairs)
-    assert list(frame.columns) == list(api.CORRELATION_COLUMNS)
     assert len(frame) == len(panel) * len(pairs)
     values = _wide(frame, "value")
     for a, b in pairs:
         with np.errstate(invalid="ignore", divide="ignore"):
-            expected = panel[a].rolling(30, min_periods=20).corr(panel[b])
+            expected = _on_own_dates(panel, a, b, lambda both, a=a, b=b: both[a].rolling(
+                30, min_periods=20).corr(both[b]))
         got = values[f"{a}/{b}"]
         assert np.array_equal(got.isna().to_numpy(), expected.isna().to_numpy()), (a, b)
         assert np.nanmax(np.abs(got - expected)) <= 1e-10
         assert got.notna().sum() > 100
     counts = _wide(frame, "n")["KLV/BRAND"]
-    common = (panel["KLV"].notna() & panel["BRAND"].notna()).astype(float).rolling(30,
-                                                                                   min_periods=1)
-    np.testing.assert_array_equal(counts.to_numpy(), common.sum().to_numpy())
+    common = _on_own_dates(panel, "KLV", "BRAND",
+                           lambda both: both["KLV"].rolling(30, min_periods=1).count())
+    np.testing.assert_array_equal(counts.to_numpy(), common.fillna(0.0).to_numpy())
 
 
 @pytest.mark.parametrize("half_life", [5.0, 21.0])
-def test_ewma_correlations_match_pandas_ewm_corr_with_gaps(
+def test_ewma_correlations_match_pandas_ewm_corr_on_each_pairs_dates(
     panel: pd.DataFrame, half_life: float
 ) -> None:
-    """Reference: pandas Series.ewm(halflife=H, adjust=True, ignore_na=False).corr(other)."""
+    """Reference: pandas Series.ewm(halflife=H, adjust=True).corr(other) on the rows where
+    both have a return."""
     pairs = ["KLV/ORMA", "BRAND/PELL", "TEZ10/NIRA"]
     frame = api.correlations(panel, f"ewma:hl={half_life:g},min=1", pairs=pairs)
     values = _wide(frame, "value")
     for text in pairs:
         a, b = text.split("/")
         with np.errstate(invalid="ignore", divide="ignore"):
-            expected = panel[a].ewm(halflife=half_life, adjust=True,
-                                    ignore_na=False).corr(panel[b])
+            expected = _on_own_dates(panel, a, b, lambda both, a=a, b=b: both[a].ewm(
+                halflife=half_life, adjust=True).corr(both[b]))
         got = values[text]
         both = got.notna() & expected.notna()
         assert both.sum() > 200
@@ -99,10 +111,9 @@ def test_bands_match_scipy_pearsonr_confidence_interval(panel: pd.DataFrame) -> 
     rows = frame.set_index(["date", "pair"])
     checked = 0
     for date in panel.index[[45, 120, 180, 259]]:
-        window = panel.loc[:date].iloc[-30:]
         for text in ("KLV/BRAND", "ORMA/NIRA"):
             a, b = text.split("/")
-            both = window[[a, b]].dropna()
+            both = panel.loc[:date, [a, b]].dropna().iloc[-30:]  # the pair's last 30 dates
             row = rows.loc[(date, text)]
             if len(both) < 20:
                 assert np.isnan(row["value"])
@@ -157,26 +168,41 @@ def test_a_date_object_index_comes_back_as_date_objects(panel: pd.DataFrame) -> 
 
 
 @pytest.mark.parametrize("row", [150, 259])
-def test_matrix_matches_dataframe_corr_of_the_window(panel: pd.DataFrame, row: int) -> None:
-    """Reference: DataFrame.corr(min_periods=20) of the 30 rows ending on the date."""
+def test_matrix_matches_dataframe_corr_of_each_pairs_window(panel: pd.DataFrame,
+                                                             row: int) -> None:
+    """Reference: DataFrame.corr(min_periods=20) of each pair's last 30 own dates."""
     on = panel.index[row]
     got = api.matrix(panel, "rolling:30,min=20", on=on if row != 259 else None)
     assert list(got.index) == SYMBOLS and list(got.columns) == SYMBOLS
-    with np.errstate(invalid="ignore", divide="ignore"):
-        expected = panel.loc[:on].iloc[-30:].corr(min_periods=20)
-    assert np.array_equal(got.isna().to_numpy(), expected.isna().to_numpy())
-    assert np.nanmax(np.abs(got.to_numpy() - expected.to_numpy())) <= 1e-10
+    checked = 0
+    for i, a in enumerate(SYMBOLS):
+        for b in SYMBOLS[i + 1:]:
+            window = panel.loc[:on, [a, b]].dropna().iloc[-30:]
+            with np.errstate(invalid="ignore", divide="ignore"):
+                expected = window.corr(min_periods=20).loc[a, b]
+            assert got.loc[a, b] == got.loc[b, a] or np.isnan(got.loc[a, b])
+            if np.isnan(expected):
+                assert np.isnan(got.loc[a, b]), (a, b)
+            else:
+                assert got.loc[a, b] == pytest.approx(expected, abs=1e-10), (a, b)
+                checked += 1
+    assert checked >= 10
 
 
 def test_matrix_of_an_ewma_matches_pandas_ewm_corr_on_that_date(panel: pd.DataFrame) -> None:
-    """Reference: DataFrame.ewm(halflife=21, adjust=True, ignore_na=False).corr()."""
+    """Reference: DataFrame.ewm(halflife=21, adjust=True).corr() on each pair's own dates."""
     on = panel.index[200]
     got = api.matrix(panel, "ewma:hl=21,min=1", on=str(on.date()))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        expected = panel.ewm(halflife=21, adjust=True, ignore_na=False).corr().loc[on]
-    both = got.notna().to_numpy() & expected.notna().to_numpy()
-    assert both.sum() >= 36
-    assert np.max(np.abs(got.to_numpy()[both] - expected.to_numpy()[both])) <= 1e-10
+    checked = 0
+    for i, a in enumerate(SYMBOLS):
+        for b in SYMBOLS[i + 1:]:
+            both = panel.loc[:on, [a, b]].dropna()
+            with np.errstate(invalid="ignore", divide="ignore"):
+                expected = both[a].ewm(halflife=21, adjust=True).corr(both[b]).iloc[-1]
+            if np.isfinite(expected) and np.isfinite(got.loc[a, b]):
+                assert got.loc[a, b] == pytest.approx(expected, abs=1e-10), (a, b)
+                checked += 1
+    assert checked >= 15
 
 
 # --- returns --------------------------------------------------------------------------------
@@ -192,15 +218,31 @@ def closes() -> pd.DataFrame:
                         columns=["KLV", "DUNQ", "ORMA"])
 
 
+def _previous_close_rows(c: np.ndarray) -> np.ndarray:
+    """Plain loop: the row of each column's previous close before each row (-1: none)."""
+    prev = np.full(c.shape, -1)
+    for j in range(c.shape[1]):
+        last = -1
+        for t in range(c.shape[0]):
+            prev[t, j] = last
+            if not np.isnan(c[t, j]):
+                last = t
+    return prev
+
+
 def test_returns_match_a_direct_numpy_computation(closes: pd.DataFrame) -> None:
     c = closes.to_numpy()
+    prev = _previous_close_rows(c)
+    before = np.where(prev >= 0, c[np.maximum(prev, 0), np.arange(c.shape[1])], np.nan)
     log = api.returns(closes)
     assert log.index.equals(closes.index[1:]) and list(log.columns) == list(closes.columns)
-    np.testing.assert_allclose(log.to_numpy(), np.log(c[1:] / c[:-1]), rtol=1e-15, atol=0,
+    np.testing.assert_allclose(log.to_numpy(), np.log(c / before)[1:], rtol=1e-15, atol=0,
                                equal_nan=True)
-    assert np.isnan(log["KLV"].iloc[[4, 5, 6, 19, 20]]).all()
+    # no close on rows 5, 6 and 20: those returns are missing, the next ones span the gap
+    assert np.isnan(log["KLV"].iloc[[4, 5, 19]]).all()
+    assert log["KLV"].iloc[6] == pytest.approx(np.log(c[7, 0] / c[4, 0]), rel=1e-15)
     simple = api.returns(closes, kind="simple")
-    np.testing.assert_allclose(simple.to_numpy(), c[1:] / c[:-1] - 1, rtol=1e-15, atol=0,
+    np.testing.assert_allclose(simple.to_numpy(), (c / before - 1)[1:], rtol=1e-15, atol=0,
                                equal_nan=True)
     # five-day returns counted back from the last row: rows 39, 34, ..., 4
     rows = np.arange(39, -1, -5)[::-1]
@@ -208,17 +250,23 @@ def test_returns_match_a_direct_numpy_computation(closes: pd.DataFrame) -> None:
     assert five.index.equals(closes.index[rows[1:]])
     np.testing.assert_allclose(five.to_numpy(), np.log(c[rows[1:]] / c[rows[:-1]]),
                                equal_nan=True)
-    # one carried close bridges the single gap (row 20), not the double one (rows 5, 6)
+    # one carried close bridges the single gap (row 20) with a zero return
     filled = api.returns(closes, fill_limit=1)
     assert filled["KLV"].iloc[19] == pytest.approx(0.0, abs=0)
     assert filled["KLV"].iloc[20] == pytest.approx(np.log(c[21, 0] / c[19, 0]), rel=1e-15)
     assert np.isnan(filled["KLV"].iloc[5])
+    assert filled["KLV"].iloc[6] == pytest.approx(np.log(c[7, 0] / c[4, 0]), rel=1e-15)
+    # beyond max_gap business days the return is missing
+    assert np.isnan(api.returns(closes, max_gap=2)["KLV"].iloc[6])
+    with pytest.raises(ConfigError, match="returns: max_gap"):
+        api.returns(closes, max_gap=0)
 
 
 def test_the_api_defaults_are_the_settings_defaults() -> None:
     assert api.DEFAULT_MEASURE == CorrelationSettings().default_measure
     defaults = ReturnsSettings()
     assert (defaults.kind, defaults.horizon, defaults.fill_limit) == ("log", 1, 0)
+    assert defaults.max_gap == api.DEFAULT_MAX_GAP == 5
     assert CorrelationSettings().level == 0.95
 
 

@@ -30,9 +30,7 @@ import numpy as np
 import numpy.typing as npt
 
 from monitor.alerts.book import AlertBook, AlertEvent
-from monitor.engine import stream
-from monitor.engine.bands import fisher_band
-from monitor.engine.scaling import standardise
+from monitor.engine.pairdates import OwnHistory, stream_on_pair_dates
 from monitor.rules import DayInputs, MeasureDay, PairLayout, Rule
 from monitor.rules.registry import lags_needed, measures_needed, pairs_needed
 
@@ -63,14 +61,6 @@ class Plan:
     level: float
 
     @property
-    def use_matrix(self) -> bool:
-        """Compute full (N, N) matrices rather than a pair list: the engine's matrix path
-        works in blocks with matrix products and wins as soon as the rules watch a good
-        share of all pairs (a tenth, here)."""
-        n = len(self.symbols)
-        return len(self.pairs) * 10 >= n * (n - 1) // 2
-
-    @property
     def max_lag(self) -> int:
         return max((lag for _, lag in self.lags), default=0)
 
@@ -98,47 +88,6 @@ def scope_hash(parts: Mapping[str, Any]) -> str:
     symbols): saved state is only reused under the same hash."""
     text = json.dumps(parts, sort_keys=True, default=str, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
-
-
-class PairDay:
-    """One day of one measure for the plan's pairs, read from the engine's (N, N) matrices.
-
-    The engine's matrix path is the fast one for many pairs, but the rules want per-pair
-    arrays: gathering them here once per measure and day (on first use) spares every rule
-    its own gather, and the Fisher band is computed for the pairs only.
-    """
-
-    def __init__(self, result: Any, flat: npt.NDArray[np.int64], level: float) -> None:
-        self._result = result
-        self._flat = flat
-        self._level = level
-
-    def _pick(self, array: np.ndarray) -> np.ndarray:
-        return np.take(np.ravel(array), self._flat)
-
-    @functools.cached_property
-    def value(self) -> np.ndarray:
-        return self._pick(self._result.value)
-
-    @functools.cached_property
-    def n(self) -> np.ndarray:
-        return self._pick(self._result.n)
-
-    @functools.cached_property
-    def stale(self) -> np.ndarray:
-        return self._pick(self._result.stale)
-
-    @functools.cached_property
-    def band(self) -> tuple[np.ndarray, np.ndarray]:
-        return fisher_band(self.value, self.n, self._level)
-
-    @property
-    def low(self) -> np.ndarray:
-        return self.band[0]
-
-    @property
-    def high(self) -> np.ndarray:
-        return self.band[1]
 
 
 @dataclass
@@ -230,34 +179,29 @@ def replay(
     """
     stop_t = returns.shape[0] if stop_t is None else stop_t
     warm_t = max(0, from_t - plan.max_lag)
-    matrix = plan.use_matrix
-    n = returns.shape[1]
-    flat = plan.pairs[:, 0] * n + plan.pairs[:, 1]
+    # Every pair on its own dates (monitor.engine.pairdates): the values `series` shows.
     streams = {
-        text: stream(returns, text, pairs=None if matrix else plan.pairs, start=warm_t,
-                     stop=stop_t, level=plan.level)
+        text: stream_on_pair_dates(returns, text, plan.pairs, start=warm_t, stop=stop_t,
+                                   level=plan.level)
         for text in plan.measures
     }
     history: dict[str, deque[Any]] = {
         text: deque(maxlen=plan.max_lag + 1) for text in plan.measures
     }
     rows = plan.history_rows
-    scaled = None
-    if rows:
-        # Computed on the whole matrix: each value depends only on its trailing rows, so
-        # every start row sees the same numbers. NaN rows stand before the history.
-        scaled = np.vstack([np.full((rows - 1, n), np.nan), standardise(returns)])
+    # Standardised on each instrument's own dates, computed on the whole matrix: each value
+    # depends only on its trailing own rows, so every start row sees the same numbers.
+    own = OwnHistory(returns[:stop_t]) if rows else None
     # Closed on every way out, so the engine thread never outlives the replay.
     with contextlib.closing(prefetch(_days(streams))) as computed:
         for t in range(warm_t, stop_t):
             today: dict[str, Any] = {}
             results = next(computed)
             for text in streams:
-                # The engine's day result goes to the rules as it is (or gathered to the pairs
-                # from a matrix): its band is computed only when a rule reads it. Each chunk
-                # is a fresh array, so earlier days held for look-backs stay valid.
-                result = results[text]
-                day: Any = PairDay(result, flat, plan.level) if matrix else result
+                # The engine's day result goes to the rules as it is: its band is computed
+                # only when a rule reads it. Each day is a fresh array, so earlier days held
+                # for look-backs stay valid.
+                day = results[text]
                 history[text].append(day)
                 today[text] = day
             if t < from_t:
@@ -272,7 +216,8 @@ def replay(
                 date=date, measures=today, layout=plan.layout, lagged=lagged,
                 days_without_close=None if days_without_close is None else days_without_close[t],
                 days_unchanged=None if days_unchanged is None else days_unchanged[t],
-                scaled_history=None if scaled is None else scaled[t:t + rows],
+                scaled_history=None if own is None else own.instruments(t, rows),
+                scaled_pairs=None if own is None else functools.partial(own.pairs, t, rows),
             )
             out = DayEvents(t, date)
             for rule in plan.rules:

@@ -32,7 +32,7 @@ from monitor.digest.context import (
     MoverView,
     _finite,
 )
-from monitor.engine import parse_measure, stream
+from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
 from monitor.engine.basket import basket_gauge
 from monitor.engine.drivers import drivers
 from monitor.engine.strength import describe
@@ -103,8 +103,8 @@ def _finite_or_none(value: float | None) -> float | None:
 
 def _pair_series(returns: np.ndarray, a: int, b: int, measure: str, start: int, stop: int,
                  level: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    days = list(stream(returns[:, [a, b]], measure, pairs=np.array([[0, 1]]), start=start,
-                       stop=stop, level=level))
+    days = list(stream_on_pair_dates(returns[:, [a, b]], measure, np.array([[0, 1]]),
+                                     start=start, stop=stop, level=level))
     value = np.array([d.value[0] for d in days])
     low = np.array([d.low[0] for d in days])
     high = np.array([d.high[0] for d in days])
@@ -217,8 +217,8 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
     elif isinstance(getattr(rule, "targets", None), GroupTargets) and primary and t >= 0:
         members = [column[s] for s in inputs.groups.get(a_text, ()) if s in column]
         if len(members) >= 2:
-            last = list(stream(matrix[:, members], primary, start=t, stop=t + 1,
-                               level=inputs.level))[-1]
+            last = list(matrix_on_pair_dates(matrix[:, members], primary, start=t,
+                                             stop=t + 1, level=inputs.level))[-1]
             value = basket_gauge(last.value, np.arange(len(members)), t).value
     elif event:
         value = float(event.get("value") or math.nan)
@@ -269,8 +269,8 @@ def _movers(inputs: DigestInputs, matrix: np.ndarray, symbols: list[str], t: int
     if pairs.size == 0 or before_t < 0:
         return []
     measure = inputs.measures[0]
-    days = list(stream(matrix, measure, pairs=pairs, start=before_t, stop=t + 1,
-                       level=inputs.level))
+    days = list(stream_on_pair_dates(matrix, measure, pairs, start=before_t, stop=t + 1,
+                                     level=inputs.level))
     now, before = days[-1].value, days[0].value
     with np.errstate(invalid="ignore"):
         change = np.abs(now - before)
@@ -296,7 +296,8 @@ def _groups(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
         if len(cols) < 2:
             continue
         block = matrix[:, cols]
-        days = list(stream(block, measure, start=first, stop=t + 1, level=inputs.level))
+        days = list(matrix_on_pair_dates(block, measure, start=first, stop=t + 1,
+                                         level=inputs.level))
         averages = []
         used = 0
         positions = np.arange(len(cols))

@@ -7,7 +7,8 @@ Fisher band and a stale flag; plus shift tests, day drivers, basket gauges and w
 Modules, one concept each: ``spec`` (measure syntax), ``layout`` (tiles and pair lists),
 ``windows`` (window bounds and row stacks), ``kernels`` (sums and moments inside windows),
 ``rolling`` (trailing-window measures), ``ewma``, ``rank``, ``bands``, ``shift``,
-``drivers``, ``basket``, ``strength``, ``stream`` (entry points).
+``drivers``, ``basket``, ``strength``, ``stream`` (entry points), ``pairdates`` (every pair
+on its own dates: the entry point the rules, ``series``, the digest and the pages use).
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ from monitor.engine.bands import DEFAULT_LEVEL, fisher_band, normal_quantile
 from monitor.engine.basket import BasketDay, basket_gauge, basket_pairs, basket_series
 from monitor.engine.drivers import Drivers, drivers
 from monitor.engine.ewma import hull_update, kish_effective_count
+from monitor.engine.pairdates import matrix_on_pair_dates, own_standardise, stream_on_pair_dates
 from monitor.engine.rank import average_ranks
 from monitor.engine.shift import (
     ShiftResult,
@@ -56,14 +58,17 @@ __all__ = [
     "hull_update",
     "independent_z",
     "kish_effective_count",
+    "matrix_on_pair_dates",
     "max_effective_count",
     "nested_shift",
     "nested_z",
     "normal_quantile",
     "one_day",
+    "own_standardise",
     "parse_measure",
     "stream",
     "strength",
+    "stream_on_pair_dates",
     "tile",
     "two_sided_p",
 ]

@@ -13,8 +13,8 @@ import numpy as np
 import numpy.typing as npt
 
 from monitor.engine.layout import FloatArray, IntArray
+from monitor.engine.pairdates import stream_on_pair_dates
 from monitor.engine.spec import Measure
-from monitor.engine.stream import stream
 from monitor.errors import EngineInputError
 
 
@@ -84,6 +84,6 @@ def basket_series(
 ) -> Iterator[BasketDay]:
     """The gauge for rows ``start .. stop-1``, computing only the members' pairs."""
     pairs = basket_pairs(members)
-    for day in stream(returns, measure, pairs=pairs, start=start, stop=stop):
+    for day in stream_on_pair_dates(returns, measure, pairs, start=start, stop=stop):
         value, used = _average(day.value)
         yield BasketDay(day.t, value, used)

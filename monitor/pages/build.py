@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from monitor import __version__
-from monitor.engine import parse_measure, stream
+from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
 from monitor.engine.basket import basket_gauge
 from monitor.engine.drivers import drivers
 from monitor.pages.context import (
@@ -70,7 +70,8 @@ class SiteInputs:
 
 def _history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.date],
              level: float, levels: Sequence[float] = ()) -> MeasureHistory:
-    days = list(stream(matrix[:, cols], measure, pairs=np.array([[0, 1]]), level=level))
+    days = list(stream_on_pair_dates(matrix[:, cols], measure, np.array([[0, 1]]),
+                                     level=level))
     return MeasureHistory(
         measure=measure, dates=dates, values=np.array([d.value[0] for d in days]),
         band_low=np.array([d.low[0] for d in days]),
@@ -81,7 +82,7 @@ def _group_history(matrix: np.ndarray, cols: list[int], measure: str, dates: lis
                    levels: Sequence[float]) -> MeasureHistory:
     positions = np.arange(len(cols))
     values = np.array([basket_gauge(d.value, positions, d.t).value
-                       for d in stream(matrix[:, cols], measure)])
+                       for d in matrix_on_pair_dates(matrix[:, cols], measure)])
     nan = np.full(len(values), np.nan)
     return MeasureHistory(measure=f"group average, {measure}", dates=dates, values=values,
                           band_low=nan, band_high=nan.copy(), levels=tuple(levels))

@@ -60,7 +60,7 @@ def _scope(settings: Settings, plan: Plan) -> str:
     tables = [t for t in settings.rule_tables if t.get("name") in set(plan.rule_names)]
     return scope_hash({
         "rules": tables, "symbols": plan.symbols, "level": plan.level,
-        "returns": [r.kind, r.horizon, r.fill_limit],
+        "returns": [r.kind, r.horizon, r.fill_limit, r.max_gap],
         "default_measure": settings.correlation.default_measure,
     })
 
@@ -103,7 +103,8 @@ def _inputs(store: Store, settings: Settings, symbols: Sequence[str], end: dt.da
     panel = read_closes(store, symbols, None, end)
     r = settings.returns
     returns = closes_to_returns(panel, kind=r.kind, horizon=r.horizon,
-                                fill_limit=r.fill_limit)
+                                fill_limit=r.fill_limit,
+                                max_gap=r.max_gap)
     without, unchanged = stale_inputs(panel)
     rows = panel.index.get_indexer(returns.index)
     return _Inputs(returns, [d.date() for d in returns.index], without[rows], unchanged[rows])

@@ -105,7 +105,8 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
     panel = read_closes(store, symbols, None, as_of)
     r = settings.returns
     returns = closes_to_returns(panel, kind=r.kind, horizon=r.horizon,
-                                fill_limit=r.fill_limit)
+                                fill_limit=r.fill_limit,
+                                max_gap=r.max_gap)
     if returns.empty:
         raise ComoveError(f"no returns on or before {as_of}: ingest closes first")
     day = returns.index[-1].date()

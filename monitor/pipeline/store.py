@@ -59,7 +59,8 @@ def read_returns(store: Store, settings: Settings, symbols: Sequence[str] | None
     panel = read_closes(store, symbols, start, end)
     r = settings.returns
     return closes_to_returns(panel, kind=r.kind, horizon=r.horizon,
-                             fill_limit=r.fill_limit)
+                             fill_limit=r.fill_limit,
+                                max_gap=r.max_gap)
 
 
 def instrument_summary(store: Store) -> pd.DataFrame:

@@ -28,7 +28,7 @@ import numpy as np
 from monitor.rules.base import FALSE_ALARMS_PARAMETER, Rule, read_common, read_false_alarms
 from monitor.rules.inputs import Condition, DayInputs
 from monitor.rules.params import Param, TableReader
-from monitor.rules.sequential import CLEAR_FRACTION, boundary, pair_evidence
+from monitor.rules.sequential import CLEAR_FRACTION, boundary, pair_evidence_of
 from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
 
 
@@ -89,10 +89,9 @@ class CusumRule(Rule):
                 f"{self.false_alarms:g} false alerts per pair per year")
 
     def evaluate(self, day: DayInputs) -> Condition:
-        if day.scaled_history is None:
-            raise KeyError("DayInputs lacks scaled_history for cusum rules")
-        found = pair_evidence(day.scaled_history, self.targets.pairs, baseline=self.baseline,
-                              horizon=self.horizon, change=self.change)
+        x, y = day.pair_history(self.targets.pairs)
+        found = pair_evidence_of(x, y, baseline=self.baseline, horizon=self.horizon,
+                                 change=self.change)
         score = found.evidence
         known = np.isfinite(score)
         return Condition.build(

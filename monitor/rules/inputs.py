@@ -37,7 +37,7 @@ from __future__ import annotations
 
 import datetime
 import functools
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Protocol
 
@@ -49,6 +49,7 @@ from monitor.rules.stats import two_sided_p
 from monitor.rules.targets import IntArray, PairLayout
 
 BoolArray = npt.NDArray[np.bool_]
+Float2D = npt.NDArray[np.float64]
 
 
 class MeasureLike(Protocol):
@@ -179,9 +180,14 @@ class DayInputs:
     days_without_close, days_unchanged : float array (N,) or None
         Inputs of ``stale`` rules; NaN for an instrument with no close yet.
     scaled_history : float array (L, N) or None
-        Standardised returns (:func:`monitor.engine.scaling.standardise`) of the L rows
-        ending on ``date`` (last row = today), L the largest ``Rule.history_rows()``; rows
-        before the history starts are NaN. None when no rule reads them.
+        Standardised returns (:func:`monitor.engine.pairdates.own_standardise`): column i
+        holds instrument i's last L own returns up to ``date`` (last row = its latest), L
+        the largest ``Rule.history_rows()``; NaN above its first. None when no rule reads
+        them.
+    scaled_pairs : callable or None
+        ``scaled_pairs(pairs) -> (x, y)``, each (L, M): the same standardised returns on
+        each pair's own last L dates (both sides have a return), for rules that correlate
+        them. None: the rows of ``scaled_history`` are used as they stand.
     """
 
     date: datetime.date
@@ -191,6 +197,17 @@ class DayInputs:
     days_without_close: Float1D | None = None
     days_unchanged: Float1D | None = None
     scaled_history: npt.NDArray[np.float64] | None = None
+    scaled_pairs: Callable[[IntArray], tuple[Float2D, Float2D]] | None = None
+
+    def pair_history(self, pairs: IntArray) -> tuple[Float2D, Float2D]:
+        """Standardised returns (L, M) of both sides of ``pairs`` on the pairs' own dates;
+        KeyError when the day has no standardised history."""
+        if self.scaled_pairs is not None:
+            return self.scaled_pairs(pairs)
+        if self.scaled_history is None:
+            raise KeyError("DayInputs.scaled_history is missing")
+        history = np.asarray(self.scaled_history, dtype=np.float64)
+        return np.take(history, pairs[:, 0], axis=1), np.take(history, pairs[:, 1], axis=1)
 
     def measure(self, text: str, pairs: IntArray) -> MeasureLike:
         """Measure ``text`` today at ``pairs`` (M, 2); KeyError when not supplied."""

@@ -240,14 +240,26 @@ stays bounded however many pairs a rule watches."""
 
 def pair_evidence(history: FloatArray, pairs: IntArray, *, baseline: int, horizon: int,
                   change: float) -> Evidence:
-    """:func:`evidence` for pairs (P, 2) of the columns of ``history`` (L, N), in blocks
-    of :data:`PAIR_BLOCK` pairs (a loop over blocks, never over pairs)."""
+    """:func:`evidence` for pairs (P, 2) of the columns of ``history`` (L, N)."""
+    recent = np.asarray(history, dtype=np.float64)[-(baseline + horizon):]
+    return pair_evidence_of(np.take(recent, pairs[:, 0], axis=1),
+                            np.take(recent, pairs[:, 1], axis=1),
+                            baseline=baseline, horizon=horizon, change=change)
+
+
+def pair_evidence_of(x: FloatArray, y: FloatArray, *, baseline: int, horizon: int,
+                     change: float) -> Evidence:
+    """:func:`evidence` for the columns of ``x`` and ``y`` (L, P), in blocks of
+    :data:`PAIR_BLOCK` pairs (a loop over blocks, never over pairs)."""
     rows = baseline + horizon
-    recent = np.asarray(history, dtype=np.float64)[-rows:]
+    x = np.asarray(x, dtype=np.float64)[-rows:]
+    y = np.asarray(y, dtype=np.float64)[-rows:]
+    width = x.shape[1]
     parts = [
-        evidence(np.take(recent, block[:, 0], axis=1), np.take(recent, block[:, 1], axis=1),
+        evidence(np.ascontiguousarray(x[:, k:k + PAIR_BLOCK]),
+                 np.ascontiguousarray(y[:, k:k + PAIR_BLOCK]),
                  baseline=baseline, horizon=horizon, change=change)
-        for block in (pairs[k:k + PAIR_BLOCK] for k in range(0, max(len(pairs), 1), PAIR_BLOCK))
+        for k in range(0, max(width, 1), PAIR_BLOCK)
     ]
     if len(parts) == 1:
         return parts[0]

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from monitor.engine import basket_gauge, basket_pairs, basket_series, stream
+from monitor.engine import basket_gauge, basket_pairs, basket_series, matrix_on_pair_dates
 from monitor.errors import EngineInputError
 from tests.engine_reference import desk_returns
 
@@ -31,7 +31,7 @@ def test_series_from_the_pairs_equals_the_gauge_of_the_matrix() -> None:
     returns = desk_returns()
     members = [0, 1, 4, 6]
     series = list(basket_series(returns, "rolling:30", members, start=90, stop=200))
-    matrices = list(stream(returns, "rolling:30", start=90, stop=200))
+    matrices = list(matrix_on_pair_dates(returns, "rolling:30", start=90, stop=200))
     for gauge, day in zip(series, matrices, strict=True):
         expected = basket_gauge(day.value, members)
         assert gauge.t == day.t
