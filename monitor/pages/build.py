@@ -32,6 +32,8 @@ from monitor.pages.context import (
     EventView,
     InstrumentView,
     MeasureHistory,
+    MuteState,
+    MuteView,
     PairPage,
     RulePage,
     RunView,
@@ -66,6 +68,7 @@ class SiteInputs:
     measures: Sequence[str]
     return_kind: str
     level: float
+    mutes: Sequence[Mapping[str, Any]] = ()  # storage.alerts.list_mutes rows
 
 
 def _history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.date],
@@ -221,7 +224,20 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
                                   confidence_level=inputs.level),
         alerts=summaries, pairs=pairs, rules=rule_pages, runs=runs, digests=inputs.digests,
         groups=dict(group_of), targets=targets,
+        mutes=_mutes(inputs.mutes, inputs.generated_at.date()),
     )
+
+
+def _mutes(rows: Sequence[Mapping[str, Any]], today: dt.date) -> list[MuteView]:
+    def state(row: Mapping[str, Any]) -> MuteState:
+        if row["until"] < today:
+            return "ended"
+        return "coming" if row["from_on"] > today else "active"
+
+    return [MuteView(id=int(row["id"]), rule=row["rule"], target=row["target"],
+                     from_on=row["from_on"], until=row["until"], reason=str(row["reason"]),
+                     state=state(row))
+            for row in sorted(rows, key=lambda r: int(r["id"]))]
 
 
 def _opening_p(events: Sequence[Mapping[str, Any]]) -> float | None:

@@ -227,6 +227,41 @@ class RulePage:
         check_word("severity", self.severity, SEVERITIES)
 
 
+MuteState = Literal["active", "coming", "ended"]
+
+
+@dataclass(frozen=True)
+class MuteView:
+    """One mute: a rule or a target whose alerts are recorded but not announced.
+
+    Attributes
+    ----------
+    id : int
+        Mute id (`comove unmute ID` lifts it).
+    rule, target : str or None
+        What is muted: every alert of a rule, or a target ("A/B", a group, a symbol) under
+        every rule; exactly one is set.
+    from_on, until : date
+        First and last muted day.
+    reason : str
+        Why, as given with `comove mute --reason`.
+    state : {"active", "coming", "ended"}
+        Relative to the day the site was built.
+    """
+
+    id: int
+    rule: str | None
+    target: str | None
+    from_on: date
+    until: date
+    reason: str
+    state: MuteState
+
+    @property
+    def what(self) -> str:
+        return f"rule {self.rule}" if self.rule else f"{self.target} under every rule"
+
+
 @dataclass(frozen=True)
 class SiteContext:
     """Everything the history site shows. The pipeline fills it; rendering reads it.
@@ -257,6 +292,8 @@ class SiteContext:
         Symbol -> group, used for the group filter and to fill `AlertSummary.groups`.
     targets : tuple of TargetPage
         Pages of groups and single instruments watched by basket and stale-data rules.
+    mutes : tuple of MuteView
+        Every mute, oldest first.
     """
 
     desk: str
@@ -271,7 +308,8 @@ class SiteContext:
     digests: Sequence[DigestLink] = ()
     groups: Mapping[str, str] = field(default_factory=dict)
     targets: Sequence[TargetPage] = ()
+    mutes: Sequence[MuteView] = ()
 
     def __post_init__(self) -> None:
-        tuple_fields(self, "alerts", "pairs", "rules", "runs", "digests", "targets")
+        tuple_fields(self, "alerts", "pairs", "rules", "runs", "digests", "targets", "mutes")
         object.__setattr__(self, "groups", dict(self.groups))

@@ -127,7 +127,8 @@ class _SiteRenderer:
         self._add("index.html", "index", self.render(
             "index.html", "", "alerts", rows=self.rows, group_names=self.group_names,
             rule_names=sorted({row.alert.rule_name for row in self.rows}), floods=self.floods,
-            screenful=SCREENFUL,
+            screenful=SCREENFUL, mutes=[m for m in ctx.mutes if m.state != "ended"],
+            ended_mutes=sum(m.state == "ended" for m in ctx.mutes),
         ))
         self._rule_pages()
         self._history_pages()
@@ -256,8 +257,11 @@ class _SiteRenderer:
         notes = [(name, self.method_notes[name])
                  for name in dict.fromkeys(row.alert.rule_name for row in rows)
                  if name in self.method_notes]
+        rule_names = {row.alert.rule_name for row in rows}
+        mutes = [m for m in self.ctx.mutes
+                 if m.target == title or (m.rule is not None and m.rule in rule_names)]
         self._add(path, owner, self.render("history.html", "../", "alerts", page=view,
-                                           method_notes=notes))
+                                           method_notes=notes, mutes=mutes))
 
 
 def render_site(ctx: SiteContext, *, workers: int = 1) -> dict[str, bytes]:

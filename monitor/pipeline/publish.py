@@ -299,6 +299,7 @@ def build_pages(store: Store, settings: Settings, out_dir: Path,
         events = alerts_store.events_for(conn)
         acks = alerts_store.list_acknowledgements(conn)
         runs = runs_store.list_runs(conn)
+        mutes = alerts_store.list_mutes(conn)
         waiting = {row.as_of: row for row in outbox_store.unsent(conn)}
     # The digest archive: each rendered digest folder is copied beside the pages.
     archive = out_dir / "digests"
@@ -324,7 +325,7 @@ def build_pages(store: Store, settings: Settings, out_dir: Path,
         rules=plan.rules, rule_tables=settings.rule_tables,
         alerts=alerts, events=events, acknowledgements=acks, runs=runs, digests=links,
         measures=settings.correlation.measures, return_kind=settings.returns.kind,
-        level=settings.correlation.level,
+        level=settings.correlation.level, mutes=mutes,
     )
     return build_site(build_site_context(inputs), out_dir)
 

@@ -215,3 +215,43 @@ def test_series_defaults_to_the_settings_measures(
     only = capsys.readouterr().out.splitlines()
     assert {line.split(",")[1] for line in only[1:]} == {"rolling:21"}
     assert only[1].startswith("2023-12-01,rolling:21,")
+
+
+def test_pages_show_the_mutes_on_the_index_and_on_the_muted_pages(
+    desk: tuple[Store, Settings], tmp_path: Path
+) -> None:
+    from bs4 import BeautifulSoup
+
+    from monitor.pages.paths import pair_page_path
+    from monitor.pipeline import build_pages
+
+    store, settings = desk
+    evaluate_range(store, settings, None, None)
+    rule_mute = mute(store, settings, rule="hedge-break", pair=None, until=dt.date(2099, 1, 1),
+                     reason="hedge being rebuilt", now=dt.datetime.now(dt.UTC))
+    pair_mute = mute(store, settings, rule=None, pair="KLV/DUNQ", until=dt.date(2099, 2, 1),
+                     reason="index rebalance", from_on=dt.date(2099, 1, 10),
+                     now=dt.datetime.now(dt.UTC))
+    old = mute(store, settings, rule="hedge-jump", pair=None, until=dt.date(2023, 1, 1),
+               reason="old", from_on=dt.date(2022, 6, 1), allow_past=True,
+               now=dt.datetime.now(dt.UTC))
+    out = tmp_path / "site"
+    build_pages(store, settings, out)
+    index = BeautifulSoup((out / "index.html").read_text(encoding="utf-8"), "html.parser")
+    rows = index.select("#mute-table tbody tr")
+    cells = [[td.get_text(strip=True) for td in row.find_all("td")] for row in rows]
+    assert cells == [
+        [str(rule_mute), "rule hedge-break", cells[0][2], "2099-01-01", "active",
+         "hedge being rebuilt"],
+        [str(pair_mute), "KLV/DUNQ under every rule", "2099-01-10", "2099-02-01", "coming",
+         "index rebalance"],
+    ]
+    assert "1 ended mute not" in index.get_text(" ", strip=True)
+    page = out / pair_page_path("KLV", "DUNQ")
+    pair = BeautifulSoup(page.read_text(encoding="utf-8"), "html.parser")
+    shown = [(row.find_all("td")[0].get_text(strip=True), row.find_all("td")[4].get_text())
+             for row in pair.select("#page-mute-table tbody tr")]
+    # The pair's own mute and the mutes of the rules with alerts on it, the ended one too:
+    # the page's history shows alerts it kept from the digest.
+    assert shown == [(str(rule_mute), "active"), (str(pair_mute), "coming"),
+                     (str(old), "ended")]
