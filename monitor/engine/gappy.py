@@ -17,11 +17,13 @@ another path. Per day and pair that is about a dozen cache-resident array operat
 correlation ``(n Sxy - Sx Sy) / sqrt((n Sxx - Sx^2)(n Syy - Sy^2))``, the count and the
 checks.
 
-Precision: the sums are taken of returns minus each instrument's mean over the chunk (the
-shift), so the one-pass formulas lose no digits to a common offset, and they are re-anchored
-(recomputed from the window rows) at the start of every chunk of at most
-:data:`ANCHOR_DAYS` days, so the rounding of the running updates never accumulates over a
-long history. Returns are clipped to +-``RETURN_LIMIT`` before any sum
+Precision: the sums are taken of returns minus a per-instrument shift (the mean of the
+chunk where the sums were anchored), so the one-pass formulas lose no digits to a common
+offset. They are carried from chunk to chunk and re-anchored (recomputed exactly from the
+window rows) after :data:`REANCHOR_DAYS` days, when the squares taken in and out since the
+anchor exceed :data:`REANCHOR_RATIO` times an instrument's current window's (a burst of
+large moves has left), or when an instrument's mean has moved far from the shift
+(:data:`SHIFT_SLACK`). Returns are clipped to +-``RETURN_LIMIT`` before any sum
 (:func:`monitor.engine.stream.as_returns`), so no product can overflow.
 
 Zero variance: an instrument whose own window values are all equal (an exact test,
@@ -33,6 +35,7 @@ moment are stale (NaN value, ``stale`` True when the count suffices).
 from __future__ import annotations
 
 from collections.abc import Iterator
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -42,9 +45,6 @@ from monitor.engine.layout import BoolArray, FloatArray, IntArray, TileLayout
 from monitor.engine.windows import flat_columns
 
 DayArrays = tuple[FloatArray, FloatArray, BoolArray]
-
-ANCHOR_DAYS = 64
-"""Most days between two exact anchors of the running sums (one chunk)."""
 
 
 def _side_block(
@@ -62,29 +62,80 @@ def _side_block(
     return mask.astype(np.float64), values
 
 
+REANCHOR_DAYS = 256
+"""Most days between two exact anchors of the running sums."""
+REANCHOR_RATIO = 10.0
+"""Re-anchor when the squares an instrument's running sums have taken in and out since the
+anchor exceed this many times its current window's (as in :mod:`monitor.engine.rolling`):
+the rounding they leave then stays below about ``4 * 10 * 2.2e-16`` of the sums."""
+SHIFT_SLACK = 1e4
+"""Keep the anchor's shift while ``(chunk mean - shift)^2 <= SHIFT_SLACK * variance`` for
+every instrument: the one-pass formulas then lose at most ``1e4 * 2.2e-16 ~ 2e-12`` of a
+variance to the offset; beyond it, a fresh anchor takes the chunk's mean as its shift."""
+
+
+@dataclass
+class GappyState:
+    """The running sums of one tile, carried from chunk to chunk (one shift per anchor)."""
+
+    day: int
+    anchored: int
+    shift: FloatArray
+    gap_count: FloatArray
+    gap_right_x: FloatArray
+    gap_right_q: FloatArray
+    gap_left_x: FloatArray
+    gap_left_q: FloatArray
+    cross: FloatArray
+    absorbed_left: FloatArray
+    absorbed_right: FloatArray
+
+
 class _Side:
-    """One side of the tile over a chunk: own window totals per day, gap rows per update."""
+    """One side of the tile over a chunk: rows ``a - W .. b - 1`` (row c is the one leaving
+    on day ``a + c``, row ``c + W`` the one entering), own window totals per day."""
 
     def __init__(
         self, returns: Returns2D, columns: IntArray, shift: FloatArray, a: int, b: int, window: int
     ) -> None:
-        first = a - window + 1
-        self.mask, self.x = _side_block(returns, columns, shift, first, b)
+        days = b - a
+        self.mask, self.x = _side_block(returns, columns, shift, a - window, b)
         self.q = self.x * self.x
-        self.gap = 1.0 - self.mask
-        entering = slice(window, None)
-        leaving = slice(0, b - a - 1)
-        # own totals of every day of the chunk: anchor, then entering minus leaving rows
-        self.count = _running(self.mask, window, entering, leaving)
-        self.total = _running(self.x, window, entering, leaving)
-        self.squares = _running(self.q, window, entering, leaving)
-        self.window = window
-        self.gaps = [np.flatnonzero(row) for row in self.mask < 1.0]
+        # own totals of every day of the chunk: day a's window, then entering minus leaving
+        self.count = _running(self.mask, window, days)
+        self.total = _running(self.x, window, days)
+        self.squares = _running(self.q, window, days)
+        rows, cols = np.nonzero(self.mask < 1.0)
+        self.gaps = np.split(cols, np.searchsorted(rows, np.arange(1, self.mask.shape[0])))
+
+    def absorbed(self, first: int, days: int, window: int) -> FloatArray:
+        """Squares taken in and out by the updates of days ``first .. days - 1``."""
+        return self.q[first + window : days + window].sum(axis=0) + self.q[first:days].sum(axis=0)
 
 
-def _running(rows: FloatArray, window: int, entering: slice, leaving: slice) -> FloatArray:
-    steps = np.concatenate([rows[:window].sum(axis=0)[None], rows[entering] - rows[leaving]])
+def _running(rows: FloatArray, window: int, days: int) -> FloatArray:
+    steps = np.concatenate(
+        [rows[1 : window + 1].sum(axis=0)[None], rows[window + 1 : window + days] - rows[1:days]]
+    )
     return np.cumsum(steps, axis=0)
+
+
+def _keeps(state: GappyState | None, a: int, sides: list[_Side]) -> bool:
+    """Whether the carried sums serve day ``a`` (else a fresh anchor is taken)."""
+    if state is None or state.day != a - 1 or a - state.anchored >= REANCHOR_DAYS:
+        return False
+    absorbed = [state.absorbed_left, state.absorbed_right]
+    for side, taken in zip(sides, absorbed, strict=False):
+        squares = side.squares[0]
+        if np.any((taken > REANCHOR_RATIO * squares) & (squares > 0)):
+            return False
+        # the chunk's variance about its own mean against the offset of the kept shift
+        count = np.maximum(side.count[0], 1.0)
+        mean = side.total[0] / count  # about the kept shift
+        variance = np.maximum(squares / count - mean * mean, 0.0)
+        if np.any(mean * mean > SHIFT_SLACK * variance):
+            return False
+    return True
 
 
 def gappy_days(
@@ -95,67 +146,79 @@ def gappy_days(
     b: int,
     window: int,
     min_count: int,
+    carry: list[GappyState | None] | None = None,
 ) -> Iterator[DayArrays]:
-    """Pairwise-complete rolling Pearson of a tile for days ``a .. b-1`` (one anchor).
+    """Pairwise-complete rolling Pearson of a tile for days ``a .. b-1``.
 
     Parameters
     ----------
     returns : (T, N) float array, NaN = missing
     layout : TileLayout (symmetric or not)
     shift : (N,) float array
-        Per-instrument centre subtracted before the sums (the chunk's mean).
+        Per-instrument centre subtracted before the sums when an anchor is taken (the
+        chunk's mean); carried sums keep their anchor's shift.
     a, b : int
-        Days; day ``a``'s sums are computed from its window rows, later days are updated.
+        Days. The sums of day ``a`` come from the previous chunk's (``carry``) plus one
+        update, or from an exact anchor on its window rows; later days are updated.
     window : int
         Window length; windows before row ``window - 1`` are cut at row 0.
     min_count : int
         Pairs with fewer common days get NaN (not stale).
+    carry : one-element list holding the state from the previous chunk (or None); updated
+        in place for the next chunk. None: no carrying.
 
     Yields
     ------
     (value, n, stale) per day, arrays of ``layout.shape``.
     """
     symmetric = layout.symmetric
-    left = _Side(returns, layout.rows, shift, a, b, window)
-    right = left if symmetric else _Side(returns, layout.cols, shift, a, b, window)
+    state = carry[0] if carry else None
+    kept_shift = state.shift if state is not None else shift
+    left = _Side(returns, layout.rows, kept_shift, a, b, window)
+    right = left if symmetric else _Side(returns, layout.cols, kept_shift, a, b, window)
+    if not _keeps(state, a, [left] if symmetric else [left, right]):
+        state = _anchor(returns, layout, shift, a, b, window)
+        left = _Side(returns, layout.rows, shift, a, b, window)
+        right = left if symmetric else _Side(returns, layout.cols, shift, a, b, window)
+        first_update = 1
+    else:
+        first_update = 0
+    assert state is not None
+    days = b - a
     flat_left = flat_columns(returns, layout.rows, a, b, window)
     flat_right = flat_left if symmetric else flat_columns(returns, layout.cols, a, b, window)
     shape = layout.shape
-    # anchor: the gap terms of day a from its window rows (rows = gap instrument)
-    lo, hi = 0, window
-    by_left_gaps = left.gap[lo:hi].T @ np.concatenate(
-        [right.mask[lo:hi], right.x[lo:hi], right.q[lo:hi]], axis=1
-    )
-    cols = shape[1]
-    # contiguous copies: each is read whole every day
-    gap_count = np.array(by_left_gaps[:, :cols])  # (I, J): common days the left's gaps remove
-    gap_right_x = np.array(by_left_gaps[:, cols : 2 * cols])  # G_L' X_R
-    gap_right_q = np.array(by_left_gaps[:, 2 * cols :])  # G_L' Q_R
-    if symmetric:
-        gap_left_x, gap_left_q = gap_right_x, gap_right_q  # (J, I) = the same matrices
-    else:
-        by_right_gaps = right.gap[lo:hi].T @ np.concatenate([left.x[lo:hi], left.q[lo:hi]], axis=1)
-        gap_left_x = np.array(by_right_gaps[:, : shape[0]])  # (J, I): G_R' X_L
-        gap_left_q = np.array(by_right_gaps[:, shape[0] :])
-    cross = left.x[lo:hi].T @ right.x[lo:hi]
+    gap_count, cross = state.gap_count, state.cross
+    gap_right_x, gap_right_q = state.gap_right_x, state.gap_right_q
+    gap_left_x, gap_left_q = state.gap_left_x, state.gap_left_q
+    # the rank-two updates of the cross products for every day of the chunk: one product
+    updates = None
+    if first_update < days:
+        steps = np.arange(first_update, days)
+        updates = layout.cross(
+            np.stack([left.x[steps + window], left.x[steps]], axis=2),
+            np.stack([right.x[steps + window], -right.x[steps]], axis=2),
+        )
+    state.absorbed_left = state.absorbed_left + left.absorbed(first_update, days, window)
+    if not symmetric:
+        state.absorbed_right = state.absorbed_right + right.absorbed(first_update, days, window)
+    state.day = -1  # until the last day of the chunk is done
+    if carry is not None:
+        carry[0] = state
     buffers = _Buffers(shape, symmetric)
     no_stale = constant(False, shape, np.bool_)
     enough_floor = min_count * (1.0 - 1e-12)
-    for c in range(b - a):
-        if c:
-            enter, leave = window - 1 + c, c - 1
+    for c in range(days):
+        if c >= first_update:
+            enter, leave = c + window, c
             _gap_rows(gap_count, right.mask, left.gaps, enter, leave)
             _gap_rows(gap_right_x, right.x, left.gaps, enter, leave)
             _gap_rows(gap_right_q, right.q, left.gaps, enter, leave)
             if not symmetric:
                 _gap_rows(gap_left_x, left.x, right.gaps, enter, leave)
                 _gap_rows(gap_left_q, left.q, right.gaps, enter, leave)
-            buffers.pair_rows[:, 0] = left.x[enter]
-            buffers.pair_rows[:, 1] = left.x[leave]
-            buffers.pair_cols[0] = right.x[enter]
-            np.negative(right.x[leave], out=buffers.pair_cols[1])
-            np.matmul(buffers.pair_rows, buffers.pair_cols, out=buffers.rank_two)
-            cross += buffers.rank_two
+            assert updates is not None
+            cross += updates[c - first_update]
         # n_ij = own count of j minus the days i misses (rows of gap_count: i's gaps)
         n = np.subtract(right.count[c][None, :], gap_count)
         sum_right = np.subtract(right.total[c][None, :], gap_right_x, out=buffers.sum_right)
@@ -174,9 +237,11 @@ def gappy_days(
         # a pair is flat when its variance is at most STALE_RATIO of the raw moment; one
         # comparison of the extremes rules that out on almost every day
         tiny = None
-        if not _clearly_moving(var_right, raw_right):
+        moving = _clearly_moving(var_right, raw_right)
+        if not moving:
             tiny = var_right <= STALE_RATIO * raw_right
         if not symmetric and not _clearly_moving(var_left, raw_left):
+            moving = False
             tiny_left = var_left <= STALE_RATIO * raw_left
             tiny = tiny_left if tiny is None else tiny | tiny_left
         elif symmetric and tiny is not None:
@@ -187,7 +252,7 @@ def gappy_days(
         # (n * Sxx - Sx^2) * (n * Syy - Sy^2), in the buffer of the sums (no longer needed)
         scale = np.multiply(var_right, var_left, out=buffers.sum_left if not symmetric else
                             buffers.sum_right)
-        if tiny is None and scale.min() > 0.0:
+        if moving:  # every variance is positive
             np.sqrt(scale, out=scale)
             value /= scale
         else:
@@ -206,17 +271,55 @@ def gappy_days(
             stale = no_stale
         if enough is not None:
             value[~enough] = np.nan
+        if c == days - 1:
+            state.day = b - 1
         yield value, n, stale
+
+
+def _anchor(
+    returns: Returns2D, layout: TileLayout, shift: FloatArray, a: int, b: int, window: int
+) -> GappyState:
+    """Exact sums of day ``a`` from its window rows (rows of the gap terms: the instrument
+    whose gaps remove the days)."""
+    first = a - window + 1
+    left_mask, left_x = _side_block(returns, layout.rows, shift, first, a + 1)
+    if layout.symmetric:
+        right_mask, right_x = left_mask, left_x
+    else:
+        right_mask, right_x = _side_block(returns, layout.cols, shift, first, a + 1)
+    right_q = right_x * right_x
+    cols = layout.shape[1]
+    by_left_gaps = (1.0 - left_mask).T @ np.concatenate([right_mask, right_x, right_q], axis=1)
+    # contiguous copies: each is read whole every day
+    gap_count = np.array(by_left_gaps[:, :cols])  # (I, J): common days the left's gaps remove
+    gap_right_x = np.array(by_left_gaps[:, cols : 2 * cols])  # G_L' X_R
+    gap_right_q = np.array(by_left_gaps[:, 2 * cols :])  # G_L' Q_R
+    if layout.symmetric:
+        gap_left_x, gap_left_q = gap_right_x, gap_right_q  # (J, I) = the same matrices
+    else:
+        rows = layout.shape[0]
+        by_right_gaps = (1.0 - right_mask).T @ np.concatenate([left_x, left_x * left_x], axis=1)
+        gap_left_x = np.array(by_right_gaps[:, :rows])  # (J, I): G_R' X_L
+        gap_left_q = np.array(by_right_gaps[:, rows:])
+    return GappyState(
+        day=a,
+        anchored=a,
+        shift=shift,
+        gap_count=gap_count,
+        gap_right_x=gap_right_x,
+        gap_right_q=gap_right_q,
+        gap_left_x=gap_left_x,
+        gap_left_q=gap_left_q,
+        cross=left_x.T @ right_x,
+        absorbed_left=np.zeros(layout.shape[0]),
+        absorbed_right=np.zeros(layout.shape[1]),
+    )
 
 
 class _Buffers:
     """Work arrays of one tile, reused every day (only the outputs are fresh arrays)."""
 
     def __init__(self, shape: tuple[int, ...], symmetric: bool) -> None:
-        rows, cols = shape
-        self.pair_rows = np.empty((rows, 2))
-        self.pair_cols = np.empty((2, cols))
-        self.rank_two = np.empty(shape)
         self.sum_right = np.empty(shape)
         self.raw_right = np.empty(shape)
         self.square = np.empty(shape)

@@ -31,12 +31,12 @@ of days times the pairs, never the history.
 from __future__ import annotations
 
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from monitor._typing import Returns2D
-from monitor.engine.gappy import ANCHOR_DAYS, gappy_days
+from monitor.engine.gappy import GappyState, gappy_days
 from monitor.engine.kernels import (
     STALE_RATIO,
     constant,
@@ -94,6 +94,8 @@ class _Carry:
     comoment: FloatArray | None = None
     absorbed_left: FloatArray | None = None
     absorbed_right: FloatArray | None = None
+    # the running sums of the gappy path (monitor.engine.gappy), carried the same way
+    gappy: list[GappyState | None] = field(default_factory=lambda: [None])
 
 
 class _Side:
@@ -306,9 +308,8 @@ def _pearson_days(
         yield from _complete_days(returns, sub, shift, a, b, window, carry)
         return
     if isinstance(sub, TileLayout):
-        # running matrix sums for the whole tile, re-anchored every ANCHOR_DAYS days
-        for lo, hi in chunks(a, b, ANCHOR_DAYS):
-            yield from gappy_days(returns, sub, shift, lo, hi, window, min_count)
+        # running matrix sums for the whole tile, carried from chunk to chunk
+        yield from gappy_days(returns, sub, shift, a, b, window, min_count, carry.gappy)
         return
     # the masked sums hold seven arrays of pairs per day: shorter runs between anchors
     size = max(1, min(b - a, DEFAULT_CHUNK_BYTES // (8 * 8 * int(np.prod(sub.shape)) + 1)))
