@@ -34,6 +34,7 @@ from monitor.digest.context import (
     Instrument,
 )
 from monitor.digest.flood import NO_GROUP, SCREENFUL, group_label, pages_filter, summarise
+from monitor.digest.order import alert_sort_key
 from monitor.digest.render import render_digest
 from monitor.digest.rendered import RenderedDigest
 from monitor.pages import SiteInputs, build_site_context
@@ -290,10 +291,15 @@ def test_the_email_does_not_grow_with_the_flood() -> None:
         # The same strongest screenful in every case, so the cards and charts match and
         # only the summary differs: the flood's extra alerts are all weaker.
         base = flood_alerts(SCREENFUL)
+        # (A finite p-value outranks any level alert of the same severity, so the weaker
+        # copies of shift alerts carry none: otherwise they push level alerts out of the
+        # screenful and the charts differ.)
         weaker = [AlertView(**{**a.__dict__, "id": 10_000 + k, "severity": "info",
-                               "p_value": None if a.p_value is None else 0.009,
+                               "p_value": None, "z": None, "baseline": None,
                                "value": a.value if a.level is None else a.level - 0.001})
                   for k, a in enumerate(alerts[SCREENFUL:])]
+        shown = summarise(sorted(base + weaker, key=alert_sort_key), opened=AS_OF).shown
+        assert {a.id for a in shown} == {a.id for a in base}
         rendered = render_digest(flood_context(base + weaker))
         sizes[count] = _email_bytes(rendered)
         rows[count] = len(summarise(sorted(base + weaker, key=strongest_first)).rows)
