@@ -23,6 +23,7 @@ from monitor.digest.context import (
     AlertHistory,
     AlertView,
     BasketView,
+    CrossMatrixView,
     DataIssueView,
     DigestContext,
     DigestParameters,
@@ -37,7 +38,7 @@ from monitor.engine.basket import basket_gauge
 from monitor.engine.drivers import drivers
 from monitor.engine.strength import describe
 from monitor.rules import Rule
-from monitor.rules.targets import GroupTargets
+from monitor.rules.targets import GroupTargets, PairTargets
 
 MOVERS_SHOWN = 10
 DRIVER_WINDOW = 63
@@ -173,6 +174,7 @@ def build_context(inputs: DigestInputs) -> DigestContext:
         acknowledged=tuple(views["acknowledged"]), cleared=tuple(views["cleared"]),
         movers=tuple(movers), baskets=tuple(baskets),
         data_quality=tuple(inputs.data_issues), heatmaps=tuple(heatmaps),
+        cross_matrices=tuple(cross_matrices(inputs, matrix, column, t)),
     )
 
 
@@ -316,3 +318,38 @@ def _groups(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
         heatmaps.append(HeatmapView(group=group, symbols=[s for s in members if s in column],
                                     matrix=np.array(days[-1].value)))
     return baskets, heatmaps
+
+
+def cross_matrices(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
+                   t: int) -> list[CrossMatrixView]:
+    """The matrix across the two groups of every ``between`` rule, once per pair of groups.
+
+    Rows are the first group's instruments, columns the second's, both in the desk's
+    order; values are the first measure on day `t`. A group pair named by several rules
+    is drawn once and lists them all.
+    """
+    wanted: dict[tuple[str, str], list[str]] = {}
+    for rule in inputs.rules.values():
+        targets = getattr(rule, "targets", None)
+        if isinstance(targets, PairTargets) and targets.between is not None:
+            wanted.setdefault(targets.between, []).append(rule.name)
+    views: list[CrossMatrixView] = []
+    if t < 0 or not wanted:
+        return views
+    measure = inputs.measures[0]
+    for (left, right), rules in wanted.items():
+        rows = [s for s in inputs.groups.get(left, ()) if s in column]
+        columns = [s for s in inputs.groups.get(right, ()) if s in column]
+        if not rows or not columns:
+            continue
+        symbols = list(dict.fromkeys(rows + columns))
+        block = matrix[:, [column[s] for s in symbols]]
+        last = list(stream(block, measure, start=t, stop=t + 1, level=inputs.level))[-1]
+        position = {s: k for k, s in enumerate(symbols)}
+        values = np.array(last.value, dtype=np.float64)[
+            np.ix_([position[s] for s in rows], [position[s] for s in columns])]
+        same = np.array([[a == b for b in columns] for a in rows], dtype=bool)
+        values[same] = np.nan  # an instrument in both groups is not paired with itself
+        views.append(CrossMatrixView(left=left, right=right, rows=rows, columns=columns,
+                                     matrix=values, rules=rules))
+    return views

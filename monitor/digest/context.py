@@ -361,6 +361,41 @@ class HeatmapView:
             )
 
 
+@dataclass(frozen=True, eq=False)
+class CrossMatrixView:
+    """The correlations across two groups that a ``between`` rule watches.
+
+    Attributes
+    ----------
+    left, right : str
+        The two groups, as the rule names them (rows, columns).
+    rows, columns : tuple of str, lengths R and C
+        Their instruments in the desk's order.
+    matrix : ndarray, shape (R, C)
+        Correlation of each row instrument with each column instrument on the as-of
+        date; NaN where a pair has too few common days (or pairs an instrument with
+        itself, when it sits in both groups).
+    rules : tuple of str
+        The rules that watch these pairs.
+    """
+
+    left: str
+    right: str
+    rows: Sequence[str]
+    columns: Sequence[str]
+    matrix: CorrMatrix
+    rules: Sequence[str] = ()
+
+    def __post_init__(self) -> None:
+        tuple_fields(self, "rows", "columns", "rules")
+        _float_array(self, "matrix")
+        if self.matrix.shape != (len(self.rows), len(self.columns)):
+            raise ValueError(
+                f"cross matrix {self.left!r} x {self.right!r}: shape {self.matrix.shape} "
+                f"for {len(self.rows)} x {len(self.columns)} symbols"
+            )
+
+
 @dataclass(frozen=True)
 class DigestParameters:
     """How the numbers were made, printed in the footer.
@@ -439,6 +474,8 @@ class DigestContext:
         Stale or missing instruments, suspect ticks, restated closes.
     heatmaps : tuple of HeatmapView
         One per group.
+    cross_matrices : tuple of CrossMatrixView
+        One per pair of groups that a ``between`` rule watches, in the rules' order.
     parameters : DigestParameters
         Measures, observation counts, return kind, horizon, confidence level.
     version : str
@@ -466,11 +503,12 @@ class DigestContext:
     data_quality: Sequence[DataIssueView] = ()
     heatmaps: Sequence[HeatmapView] = ()
     pages_url: str = ""
+    cross_matrices: Sequence[CrossMatrixView] = ()
 
     def __post_init__(self) -> None:
         tuple_fields(
             self, "new_alerts", "continuing", "acknowledged", "cleared", "movers",
-            "baskets", "data_quality", "heatmaps",
+            "baskets", "data_quality", "heatmaps", "cross_matrices",
         )
 
     @property
@@ -485,6 +523,7 @@ __all__ = [
     "AlertHistory",
     "AlertView",
     "BasketView",
+    "CrossMatrixView",
     "DataIssueView",
     "DigestContext",
     "DigestParameters",

@@ -48,7 +48,11 @@ def _alert_alt(alert: AlertView) -> str:
 
 @dataclass(frozen=True)
 class MatrixTable:
-    """A heatmap's matrix ordered as drawn, for the table beside it."""
+    """A heatmap's matrix ordered as drawn, for the table beside it.
+
+    `symbols` head the columns, each row starts with its own symbol. `across` marks the
+    matrix between two groups (a ``between`` rule's), whose `group` reads "A × B".
+    """
 
     group: str
     symbols: tuple[str, ...]
@@ -56,13 +60,15 @@ class MatrixTable:
     image_key: str | None
     csv_name: str | None
     note: str
+    across: bool = False
 
 
-def _matrix_csv(symbols: Sequence[str], matrix: np.ndarray) -> bytes:
+def _matrix_csv(symbols: Sequence[str], matrix: np.ndarray,
+                rows: Sequence[str] | None = None) -> bytes:
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(["symbol", *symbols])
-    for symbol, row in zip(symbols, matrix, strict=True):
+    for symbol, row in zip(symbols if rows is None else rows, matrix, strict=True):
         writer.writerow([symbol, *("" if not math.isfinite(v) else f"{v:.4f}" for v in row)])
     return buffer.getvalue().encode("utf-8")
 
@@ -85,12 +91,15 @@ def build_figures(
     Returns
     -------
     images : list of DigestImage
-        Every chart in the order shown: alerts, group averages, heatmaps.
+        Every chart in the order shown: alerts, group averages, heatmaps, matrices across
+        groups.
     by_key : dict of str to DigestImage
-        The same images by template key ("alert-1", "basket-1", "heatmap-1", ...).
+        The same images by template key ("alert-1", "basket-1", "heatmap-1",
+        "across-1", ...).
     tables : list of MatrixTable
         One per heatmap, instruments in the drawn (clustered) order; a group of fewer
-        than two instruments gets a note and no image.
+        than two instruments gets a note and no image. Then one per cross-group matrix
+        (`across` true), rows and columns in the desk's order.
     attachments : list of DigestAttachment
         CSV matrices of groups larger than `MATRIX_TABLE_MAX` (NaN written as "").
     """
@@ -174,6 +183,35 @@ def build_figures(
             "ordered by clustering; the values are in the table or file beside it.",
         )
         tables.append(MatrixTable(heatmap.group, ordered, rows, key, csv_name, note))
+
+    for index, cross in enumerate(ctx.cross_matrices, start=1):
+        name = f"{cross.left} \u00d7 {cross.right}"
+        stem = f"across-{index:02d}-{_slug(cross.left)}-{_slug(cross.right)}"
+        chart = png_charts.cross_heatmap_chart(
+            cross.rows, cross.columns, cross.matrix, title=f"{name}: correlation across groups"
+        )
+        key = f"across-{index}"
+        csv_name = None
+        rows = ()
+        watched = ", ".join(cross.rules)
+        if max(len(cross.rows), len(cross.columns)) <= MATRIX_TABLE_MAX:
+            rows = tuple((symbol, tuple(float(v) for v in row))
+                         for symbol, row in zip(cross.rows, cross.matrix, strict=True))
+            note = (f"Rows {cross.left}, columns {cross.right}: the pairs rule {watched} "
+                    "watches.")
+        else:
+            csv_name = f"{stem}-matrix.csv"
+            attachments.append(DigestAttachment(
+                csv_name, "text/csv", _matrix_csv(cross.columns, cross.matrix, cross.rows)))
+            note = (f"Rows {cross.left}, columns {cross.right} (rule {watched}): "
+                    f"{len(cross.rows)} x {len(cross.columns)} pairs, the full matrix is in "
+                    f"the attached file {csv_name}.")
+        add(key, f"{stem}-heatmap", chart,
+            f"Heatmap of the correlations between {cross.left} ({len(cross.rows)} "
+            f"instruments, rows) and {cross.right} ({len(cross.columns)}, columns); the "
+            "values are in the cells and in the table or file beside it.")
+        tables.append(MatrixTable(name, tuple(cross.columns), rows, key, csv_name, note,
+                                  across=True))
 
     return images, by_key, tables, attachments
 

@@ -2,8 +2,10 @@
 
 This module owns the pictures: an alert's measure over its last year with band, level and
 clear lines; a correlation heatmap per group with instruments ordered by average-linkage
-clustering (written here in numpy, so scipy is not a runtime dependency); and a small
-history of a group's average pairwise correlation. Every chart is drawn on a
+clustering (written here in numpy, so scipy is not a runtime dependency), each cell
+carrying its value; the rectangle of correlations between two groups (a `between` rule's
+pairs, the hedge a desk holds); and a small history of a group's average pairwise
+correlation. Every chart is drawn on a
 `FigureCanvasAgg` directly, never through pyplot, so no GUI backend is ever chosen, no
 global figure state is kept, and concurrent renders cannot interfere.
 
@@ -345,6 +347,86 @@ def cluster_order(matrix: CorrMatrix) -> npt.NDArray[np.intp]:
     return leaf_order(average_linkage(distance))
 
 
+CELL_VALUES_MAX = 15
+"""Largest side of a matrix whose cells are written with their values (beyond that the
+digits would be too small to read; the table or CSV beside the chart has them)."""
+LABELS_MAX = 40
+"""Largest side of a matrix whose rows and columns are labelled with their symbols."""
+
+
+def _cell_text_colour(value: float) -> str:
+    # Dark ends of the palette get white digits, the pale middle gets ink.
+    return "#ffffff" if abs(value) >= 0.55 else INK
+
+
+def matrix_figure(
+    row_symbols: Sequence[str], column_symbols: Sequence[str], matrix: CorrMatrix, *,
+    title: str = "",
+) -> Figure:
+    """Draw a correlation matrix as it is (no reordering): cells, labels, values, colour bar.
+
+    Parameters
+    ----------
+    row_symbols, column_symbols : sequence of str, lengths R and C
+        Labels of the rows (left) and columns (top).
+    matrix : ndarray, shape (R, C)
+        Correlations; NaN cells are left white (and written "n/a" when values are shown).
+    title : str
+        Short title above the plot.
+
+    Returns
+    -------
+    Figure
+        On an Agg canvas, laid out by matplotlib's constrained layout, so no label of the
+        rows, columns or colour bar is cut off at the figure's edge. Cells carry their
+        value (two decimals) when neither side is longer than `CELL_VALUES_MAX`.
+    """
+    r = np.asarray(matrix, dtype=np.float64)
+    rows, columns = len(row_symbols), len(column_symbols)
+    if r.shape != (rows, columns):
+        raise ValueError(f"matrix shape {r.shape} does not match {rows} x {columns} symbols")
+    longest = max(rows, columns)
+    cell = 0.42 if longest <= CELL_VALUES_MAX else 0.12
+    width = float(min(9.0, max(4.2, cell * columns + 2.2)))
+    height = float(min(9.0, max(2.4, cell * rows + 1.8)))
+    figure = Figure(figsize=(width, height), dpi=DPI, layout="constrained")
+    FigureCanvasAgg(figure)
+    axes = figure.add_subplot()
+    image = axes.imshow(
+        np.ma.masked_invalid(r), cmap=CORRELATION_CMAP, vmin=-1.0, vmax=1.0,
+        interpolation="nearest", aspect="equal",
+    )
+    axes.tick_params(length=0, colors=INK)
+    for spine in axes.spines.values():
+        spine.set_visible(False)
+    if longest <= LABELS_MAX:
+        fontsize = 7 if longest <= CELL_VALUES_MAX else 5
+        axes.set_xticks(np.arange(columns), labels=list(column_symbols), rotation=90,
+                        fontsize=fontsize)
+        axes.set_yticks(np.arange(rows), labels=list(row_symbols), fontsize=fontsize)
+        axes.xaxis.tick_top()
+    else:
+        # Beyond ~40 labels they overprint; the table or file beside the chart names them.
+        axes.set_xticks([])
+        axes.set_yticks([])
+    if longest <= CELL_VALUES_MAX:
+        for i in range(rows):
+            for j in range(columns):
+                value = float(r[i, j])
+                known = np.isfinite(value)
+                text = f"{value:.2f}".replace("-", "\u2212") if known else "n/a"
+                axes.text(j, i, text, ha="center", va="center", fontsize=6,
+                          color=_cell_text_colour(value) if known else MUTED)
+    colorbar = figure.colorbar(image, ax=axes, shrink=0.8, aspect=25, pad=0.02)
+    colorbar.set_ticks([-1.0, -0.5, 0.0, 0.5, 1.0],
+                       labels=["\u22121", "\u22120.5", "0", "0.5", "1"])
+    colorbar.ax.tick_params(labelsize=6, colors=MUTED)
+    colorbar.outline.set_visible(False)
+    if title:
+        figure.suptitle(title, fontsize=8, color=INK, x=0.02, ha="left")
+    return figure
+
+
 def heatmap_chart(
     symbols: Sequence[str], matrix: CorrMatrix, *, title: str = ""
 ) -> tuple[ChartImage, tuple[str, ...]]:
@@ -362,7 +444,8 @@ def heatmap_chart(
     Returns
     -------
     image : ChartImage
-        A square chart, 4.2 inches for small groups and up to 7 for large ones.
+        The matrix drawn by `matrix_figure` (values in the cells up to `CELL_VALUES_MAX`
+        instruments, labels never cut off).
     ordered_symbols : tuple of str
         The symbols in the order drawn, so a table beside the chart can follow it.
     """
@@ -373,35 +456,34 @@ def heatmap_chart(
     if n < 2:
         raise ValueError(f"a heatmap needs at least 2 instruments, got {n}")
     order = cluster_order(r)
-    ordered = r[np.ix_(order, order)]
     names = tuple(symbols[i] for i in order)
-    side = float(min(7.0, max(4.2, 0.12 * n + 1.6)))
-    figure = _figure(side, side)
-    # The figure is square, so equal fractions keep the cells square without letterboxing.
-    axes = figure.add_axes((0.14, 0.04, 0.74, 0.74))
-    image = axes.imshow(
-        np.ma.masked_invalid(ordered), cmap=CORRELATION_CMAP, vmin=-1.0, vmax=1.0,
-        interpolation="nearest", aspect="equal",
-    )
-    axes.tick_params(length=0, colors=INK)
-    for spine in axes.spines.values():
-        spine.set_visible(False)
-    if n <= 40:
-        fontsize = 7 if n <= 15 else 5
-        axes.set_xticks(np.arange(n), labels=names, rotation=90, fontsize=fontsize)
-        axes.set_yticks(np.arange(n), labels=names, fontsize=fontsize)
-        axes.xaxis.tick_top()
-    else:
-        # Beyond ~40 labels they overprint; the table or file beside the chart names them.
-        axes.set_xticks([])
-        axes.set_yticks([])
-    colorbar_axes = figure.add_axes((0.91, 0.04, 0.025, 0.74))
-    colorbar = figure.colorbar(image, cax=colorbar_axes)
-    colorbar.ax.tick_params(labelsize=6, colors=MUTED)
-    colorbar.outline.set_visible(False)
-    if title:
-        figure.text(0.02, 0.965, title, fontsize=8, color=INK)
+    figure = matrix_figure(names, names, r[np.ix_(order, order)], title=title)
     return _to_image(figure), names
+
+
+def cross_heatmap_chart(
+    row_symbols: Sequence[str], column_symbols: Sequence[str], matrix: CorrMatrix, *,
+    title: str = "",
+) -> ChartImage:
+    """Draw the correlations between two groups (rows one group, columns the other).
+
+    Parameters
+    ----------
+    row_symbols, column_symbols : sequence of str, lengths R and C (both at least 1)
+        The two groups' instruments, in the desk's order.
+    matrix : ndarray, shape (R, C)
+        Correlation of each row instrument with each column instrument; NaN left white.
+    title : str
+        Short title above the plot.
+
+    Returns
+    -------
+    ChartImage
+        The rectangle drawn by `matrix_figure`, rows and columns as given.
+    """
+    if not row_symbols or not column_symbols:
+        raise ValueError("a cross-group matrix needs at least one instrument on each side")
+    return _to_image(matrix_figure(row_symbols, column_symbols, matrix, title=title))
 
 
 def basket_history_chart(

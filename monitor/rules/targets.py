@@ -118,9 +118,14 @@ class Targets:
 
 @dataclass(frozen=True, eq=False, kw_only=True)
 class PairTargets(Targets):
-    """Pairs (P, 2) of column indices, ``i < j``, sorted, with labels ``"A/B"``."""
+    """Pairs (P, 2) of column indices, ``i < j``, sorted, with labels ``"A/B"``.
+
+    ``between`` keeps the two group names of a ``between`` key, so the digest and the
+    pages can show the matrix across the two groups (empty for other targets).
+    """
 
     pairs: IntArray
+    between: tuple[str, str] | None = None
 
     def symbols_of(self, k: int) -> tuple[int, ...]:
         return (int(self.pairs[k, 0]), int(self.pairs[k, 1]))
@@ -293,6 +298,7 @@ def resolve_pairs(reader: TableReader, universe: Universe) -> PairTargets:
     for group in reader.read_names("group") or []:
         blocks.append(_pairs_within(universe.group_indices(reader, "group", group)))
     between = reader.read_names("between")
+    across: tuple[str, str] | None = None
     if between is not None:
         if len(between) != 2:
             raise reader.error("between", f"expected two group names, got {between!r}")
@@ -300,11 +306,13 @@ def resolve_pairs(reader: TableReader, universe: Universe) -> PairTargets:
         right = universe.group_indices(reader, "between", between[1])
         grid = np.array(np.meshgrid(left, right, indexing="ij")).reshape(2, -1).T
         blocks.append(grid[grid[:, 0] != grid[:, 1]].astype(np.int64))
+        across = (between[0], between[1])
     stacked = np.concatenate(blocks) if blocks else np.empty((0, 2), dtype=np.int64)
     pairs = _canonical(stacked, n) if stacked.size else stacked
     if pairs.shape[0] == 0:
         raise reader.error(chosen[0], "resolves to no pairs")
-    return PairTargets(labels=_pair_labels(pairs, universe.symbols), pairs=pairs)
+    return PairTargets(labels=_pair_labels(pairs, universe.symbols), pairs=pairs,
+                       between=across)
 
 
 def resolve_groups(reader: TableReader, universe: Universe) -> GroupTargets:
