@@ -243,11 +243,49 @@ def update_open_alerts(
     )
 
 
-def refresh_states(conn: Connection, alert_ids: Iterable[int]) -> None:
+RETRACTED = "retracted"
+"""The state of an alert a rerun over the same days no longer produces, kept because it was
+acknowledged or already announced in an evening's digest (older stores said "withdrawn")."""
+
+
+@dataclass(frozen=True)
+class Retraction:
+    """Why a rerun no longer produces an alert: recorded on every alert it retracts."""
+
+    on: dt.date
+    reason: str
+    batch: int | None = None
+
+
+def digest_days(conn: Connection) -> list[dt.date]:
+    """The days an evening's digest was made for (a done daily run) or sent, ascending."""
+    from storage.schema import outbox, runs
+
+    daily = conn.execute(select(runs.c.as_of).where(runs.c.kind == "daily",
+                                                    runs.c.status == "done")).scalars()
+    sent = conn.execute(select(outbox.c.as_of).where(
+        outbox.c.status.in_(["sent", "maybe sent"]))).scalars()
+    return sorted(set(daily) | set(sent))
+
+
+def _was_shown(opened: dt.date, cleared: dt.date | None, days: Sequence[dt.date]) -> bool:
+    """Whether the alert was open on a day whose digest was made (so a reader saw it)."""
+    import bisect
+
+    k = bisect.bisect_left(days, opened)
+    return k < len(days) and (cleared is None or days[k] <= cleared)
+
+
+def refresh_states(conn: Connection, alert_ids: Iterable[int],
+                   retraction: Retraction | None = None) -> None:
     """Derive each alert's state from its events: cleared when a cleared event exists,
-    open while its opened event exists, otherwise withdrawn (kept when acknowledged,
-    deleted when nothing refers to it)."""
+    open while its opened event exists, otherwise retracted when it was acknowledged or
+    announced (open on a day an evening's digest was made for), with `retraction`'s day,
+    reason and batch; an alert nobody saw and nothing refers to is deleted."""
     wanted = sorted(set(alert_ids))
+    shown_days: list[dt.date] | None = None
+    why = retraction or Retraction(on=dt.datetime.now(dt.UTC).date(),
+                                   reason="a rerun over the same days no longer produces it")
     for chunk in (wanted[i:i + 500] for i in range(0, len(wanted), 500)):
         kinds: dict[int, dict[str, dt.date]] = {alert_id: {} for alert_id in chunk}
         for alert_id, event, first in conn.execute(
@@ -258,7 +296,16 @@ def refresh_states(conn: Connection, alert_ids: Iterable[int]) -> None:
             kinds[alert_id][event] = first
         acked = set(conn.execute(select(acknowledgements.c.alert_id)
                                  .where(acknowledgements.c.alert_id.in_(chunk))).scalars())
+        orphans = [alert_id for alert_id, seen in kinds.items()
+                   if "cleared" not in seen and "opened" not in seen]
+        rows = {}
+        if orphans:
+            rows = {r.id: r for r in conn.execute(
+                select(alerts.c.id, alerts.c.opened_on, alerts.c.cleared_on, alerts.c.state,
+                       alerts.c.announced, alerts.c.retracted_on)
+                .where(alerts.c.id.in_(orphans))).all()}
         updates = []
+        retracted = []
         gone = []
         for alert_id, seen in kinds.items():
             if "cleared" in seen:
@@ -266,15 +313,29 @@ def refresh_states(conn: Connection, alert_ids: Iterable[int]) -> None:
                                 "b_cleared": seen["cleared"]})
             elif "opened" in seen:
                 updates.append({"b_id": alert_id, "b_state": "open", "b_cleared": None})
-            elif alert_id in acked:
-                updates.append({"b_id": alert_id, "b_state": "withdrawn", "b_cleared": None})
             else:
-                gone.append(alert_id)
+                row = rows.get(alert_id)
+                if row is not None and row.state in (RETRACTED, "withdrawn"):
+                    continue  # already retracted: keep the first day and reason
+                if shown_days is None and row is not None and row.announced:
+                    shown_days = digest_days(conn)
+                if alert_id in acked or (row is not None and row.announced and _was_shown(
+                        row.opened_on, row.cleared_on, shown_days or [])):
+                    retracted.append({"b_id": alert_id})
+                else:
+                    gone.append(alert_id)
         _many(conn, alerts.update().where(alerts.c.id == bindparam("b_id")).values(
-            state=bindparam("b_state"), cleared_on=bindparam("b_cleared")),
+            state=bindparam("b_state"), cleared_on=bindparam("b_cleared"), retracted_on=None,
+            retracted_reason=None, retracted_batch=None),
             [{"b_state": u["b_state"], "b_cleared": u["b_cleared"], "b_id": u["b_id"]}
              for u in updates],
-            "UPDATE alerts SET state = ?, cleared_on = ? WHERE id = ?")
+            "UPDATE alerts SET state = ?, cleared_on = ?, retracted_on = NULL, "
+            "retracted_reason = NULL, retracted_batch = NULL WHERE id = ?")
+        if retracted:
+            conn.execute(alerts.update().where(alerts.c.id.in_([r["b_id"] for r in retracted]))
+                         .values(state=RETRACTED, cleared_on=None, retracted_on=why.on,
+                                 retracted_reason=why.reason[:2000],
+                                 retracted_batch=why.batch))
         if gone:
             conn.execute(delete(alert_events).where(alert_events.c.alert_id.in_(gone)))
             conn.execute(delete(alerts).where(alerts.c.id.in_(gone)))
@@ -334,7 +395,8 @@ def list_alerts(
     """
     query = select(alerts)
     if open_on is not None:
-        query = query.where(alerts.c.opened_on <= open_on, alerts.c.state != "withdrawn",
+        query = query.where(alerts.c.opened_on <= open_on,
+                            alerts.c.state.not_in([RETRACTED, "withdrawn"]),
                             or_(alerts.c.cleared_on.is_(None), alerts.c.cleared_on >= open_on))
     if open_only:
         query = query.where(alerts.c.state == "open")

@@ -323,6 +323,20 @@ def earliest_change_since(conn: Connection, batch_id: int) -> tuple[dt.date | No
     return first, int(newest)
 
 
+def first_changing_batch(conn: Connection, after_batch: int, on_or_before: dt.date
+                         ) -> tuple[int, str] | None:
+    """The first batch after `after_batch` that changed a close on or before the given day
+    (a restatement or history ingested late): its id and file name; None when there is
+    none."""
+    row = conn.execute(
+        select(ingest_batches.c.id, ingest_batches.c.file_name)
+        .where(ingest_batches.c.id > after_batch,
+               ingest_batches.c.earliest_changed <= on_or_before)
+        .order_by(ingest_batches.c.id).limit(1)
+    ).first()
+    return (int(row.id), str(row.file_name)) if row is not None else None
+
+
 @dataclass(frozen=True)
 class BatchRow:
     id: int

@@ -317,7 +317,9 @@ class DataIssueView:
     ----------
     kind : str
         "stale" (no new close), "missing" (no close at all), "suspect" (a tick that looks
-        wrong) or "restated" (a close changed after it was first stored).
+        wrong), "restated" (a close changed after it was first stored) or "retracted" (an
+        alert announced earlier that a rerun on changed closes no longer produces; `symbol`
+        is then the alert's target and `day` its opened day).
     symbol : str
         The instrument.
     day : date or None

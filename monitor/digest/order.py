@@ -12,7 +12,7 @@ from typing import Any
 
 from monitor.digest.context import SEVERITY_RANK, AlertView, DataIssueView, MoverView, _finite
 
-DATA_ISSUE_KINDS = ("stale", "missing", "suspect", "restated")
+DATA_ISSUE_KINDS = ("stale", "missing", "suspect", "restated", "retracted")
 """Known kinds of data issue, in display order; other words are shown after them."""
 
 

@@ -9,6 +9,7 @@ import difflib
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -163,6 +164,7 @@ def evaluate_range(
                  for m in alerts_store.list_mutes(conn)]
         run_id = runs_store.start_run(conn, kind=kind, as_of=last, range_start=first,
                                       params_hash=scope, now=clock())
+        retraction = _retraction(conn, saved, changed_from, force, kind, last, clock())
     book = AlertBook()
     from_t = 0
     report = EvaluationReport(run_id=run_id, start=first, end=last)
@@ -200,7 +202,8 @@ def evaluate_range(
             stopping = should_stop is not None and should_stop()
             if (stopping or len(pending) >= commit_days or day.t == stop_t - 1
                     or time.monotonic() - last_commit >= commit_seconds):
-                _commit_days(store, plan, scope, book, pending, watermark, report, clock())
+                _commit_days(store, plan, scope, book, pending, watermark, report, clock(),
+                             retraction)
                 pending = []
                 last_commit = time.monotonic()
                 if progress is not None:
@@ -246,8 +249,35 @@ def _ack_lookup(book: AlertBook,
     return lookup
 
 
+def _retraction(conn: Any, saved: alerts_store.SavedState | None, changed_from: dt.date | None,
+                force: bool, kind: str, last: dt.date, now: dt.datetime
+                ) -> alerts_store.Retraction:
+    """Why this replay may no longer produce an alert it produced before, recorded on each
+    alert it retracts. The day is the run's as-of date for the daily run, else the later
+    of the range's end and today (so the next evening's digest lists it)."""
+    on = last if kind == "evaluation" else max(last, now.date())
+    if saved is not None and changed_from is not None and changed_from <= saved.last_date:
+        batch = closes_store.first_changing_batch(conn, saved.batch_watermark, saved.last_date)
+        if batch is not None:
+            return alerts_store.Retraction(
+                on=on, batch=batch[0],
+                reason=f"closes from {changed_from} on were restated or added late (ingest "
+                       f"batch {batch[0]}, {Path(batch[1]).name}); the rerun no longer "
+                       "produces the alert")
+    if force:
+        return alerts_store.Retraction(on=on, reason="a forced rerun over the same days no "
+                                                     "longer produces the alert")
+    if saved is None:
+        return alerts_store.Retraction(on=on, reason="a rerun after the rules, instruments or "
+                                                     "return settings changed no longer "
+                                                     "produces the alert")
+    return alerts_store.Retraction(on=on, reason="a rerun over the same days no longer "
+                                                 "produces the alert")
+
+
 def _commit_days(store: Store, plan: Plan, scope: str, book: AlertBook, days: list[DayEvents],
-                 watermark: int, report: EvaluationReport, now: dt.datetime) -> None:
+                 watermark: int, report: EvaluationReport, now: dt.datetime,
+                 retraction: alerts_store.Retraction | None = None) -> None:
     rules = list(plan.rule_names)
     with store.begin() as conn:
         touched = alerts_store.delete_events_between(conn, rules, days[0].date, days[-1].date)
@@ -264,7 +294,7 @@ def _commit_days(store: Store, plan: Plan, scope: str, book: AlertBook, days: li
                     report.cleared += 1
                 else:
                     report.reminders += 1
-        alerts_store.refresh_states(conn, touched)
+        alerts_store.refresh_states(conn, touched, retraction)
         last = days[-1].date
         alerts_store.update_open_alerts(conn, [
             (alert.key.rule, alert.key.target, alert.key.opened, alert.peak_value,

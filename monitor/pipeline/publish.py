@@ -84,6 +84,7 @@ def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date
             issues.append(DataIssueView("restated", r.symbol, r.date,
                                         f"close restated {r.old_close:g} -> {r.new_close:g} "
                                         f"from {Path(r.source_file).name}"))
+    issues += _retracted_issues(store, as_of)
     attention = ""
     if day < as_of and schedule.is_run_date(as_of):
         attention = (f"No closes for {as_of}: the latest closes are from {day}. "
@@ -92,6 +93,24 @@ def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date
         count = len({i.symbol for i in issues if i.kind in ("stale", "missing")})
         attention = f"{count} instrument(s) have stale or missing closes; see Data quality."
     return issues, attention
+
+
+def _retracted_issues(store: Store, as_of: dt.date) -> list[Any]:
+    """Alerts retracted since the previous evening's digest (after it, through `as_of`):
+    a reader who saw them announced learns they are gone, why, and that the id stays."""
+    from monitor.digest import DataIssueView
+
+    with store.connect() as conn:
+        earlier = [d for d in alerts_store.digest_days(conn) if d < as_of]
+        since = earlier[-1] if earlier else dt.date.min
+        rows = [a for a in alerts_store.list_alerts(conn)
+                if a.state == alerts_store.RETRACTED and a.retracted_on is not None
+                and since < a.retracted_on <= as_of]
+    return [DataIssueView(
+        "retracted", a.target, a.opened_on,
+        f"alert {a.id} ({a.rule}, opened {a.opened_on}) retracted: {a.retracted_reason}; "
+        f"its id{' and acknowledgement' if a.acknowledged_by else ''} are kept "
+        f"(comove alerts --all)") for a in rows]
 
 
 def digest_context(store: Store, settings: Settings, as_of: dt.date,
