@@ -469,7 +469,7 @@ def evaluate(
         The closes behind ``returns`` (a row for every date of ``returns``); needed only by
         ``stale`` rules, which count days without a new or a changed close.
     level : float
-        Confidence level of the bands (and of ``confident`` level rules), in (0, 1).
+        Confidence level of the bands (and of ``require_band`` level rules), in (0, 1).
     default_measure : str
         Measure of a rule without ``measure``.
 

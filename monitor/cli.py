@@ -338,7 +338,8 @@ def _backfill(args: argparse.Namespace) -> int:
 def _alerts_args(parser: argparse.ArgumentParser) -> None:
     which = parser.add_mutually_exclusive_group()
     which.add_argument("--open", action="store_true", help="open alerts only (the default)")
-    which.add_argument("--all", action="store_true", help="open, cleared and withdrawn alerts")
+    which.add_argument("--all", action="store_true",
+                       help="open, cleared and retracted alerts (a rerun no longer produces them)")
     parser.add_argument("--since", type=_date, metavar="DATE",
                         help="alerts opened, cleared or still open on or after DATE")
     parser.add_argument("--pair", metavar="A/B", help="alerts of one pair")

@@ -23,6 +23,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from monitor._typing import ReturnKind, SmtpSecurity
 from monitor.errors import ConfigError
+from monitor.renamed import OLD_SETTING_KEYS, old_name_hint
 
 DEFAULT_FILE = "comove.toml"
 ENV_VAR = "COMOVE_CONFIG"
@@ -169,7 +170,9 @@ class InstrumentSettings:
     symbol: str = setting(_REQUIRED, "Code of the instrument as it appears in the CSV files.",
                           check=_symbol)
     name: str = setting("", "Readable name, shown in the digest and the pages.")
-    group: str = setting("", "Group the instrument belongs to (rules and gauges use groups).")
+    group: str = setting(
+        "", "Group the instrument belongs to (rules and the digest's group averages use groups)."
+    )
     currency: str = setting("", "Currency of the close.")
     calendar: str = setting(
         "", "Exchange calendar code of the instrument's market as the exchange_calendars "
@@ -204,7 +207,7 @@ class CorrelationSettings:
     """[correlation]: measures shown and the confidence band."""
 
     level: float = setting(
-        0.95, "Confidence level of every Fisher z band (and of `confident` level rules).",
+        0.95, "Confidence level of every Fisher z band (and of `require_band` level rules).",
         kind=(int, float), check=_level,
     )
     measures: tuple[str, ...] = setting(
@@ -216,11 +219,11 @@ class CorrelationSettings:
     default_measure: str = setting(
         "rolling:63", "Measure of a rule that does not name one.", check=_measure,
     )
-    movers_days: int = setting(
+    largest_changes_days: int = setting(
         5, "Business days over which the digest's 'largest changes' are measured.",
         kind=int, check=_at_least(1),
     )
-    gauge_days: int = setting(
+    group_average_days: int = setting(
         21, "Business days over which a group average's change is shown (about a month).",
         kind=int, check=_at_least(1),
     )
@@ -438,7 +441,10 @@ def _section_and_problems(cls: type, raw: Any, path: str) -> tuple[Any, list[str
         )
     for key in raw:
         if key not in fields and key != "password":
-            problems.append(f"{path}.{key}: unknown key; {_suggest(key, list(fields))}")
+            if OLD_SETTING_KEYS.get(key) in fields:
+                problems.append(f"{path}.{key}: {old_name_hint(key, OLD_SETTING_KEYS[key])}")
+            else:
+                problems.append(f"{path}.{key}: unknown key; {_suggest(key, list(fields))}")
     values: dict[str, Any] = {}
     for fld in fields.values():
         problem = _read_key(fld, raw, path, values)

@@ -17,6 +17,18 @@ from sqlalchemy import Connection, and_, bindparam, delete, func, or_, select, u
 
 from storage.schema import acknowledgements, alert_events, alerts, evaluation_state, mutes
 
+RETRACTED = "retracted"
+"""The state of an alert a rerun over the same days no longer produces, kept because it was
+acknowledged or already announced in an evening's digest (older stores said "withdrawn")."""
+
+
+STORED_STATES = {"withdrawn": RETRACTED}
+"""Words earlier versions wrote in ``alerts.state``, read as today's word."""
+RETRACTED_WORDS = (RETRACTED, "withdrawn")
+
+STORED_KINDS = {"basket": "group-average"}
+"""Rule kinds earlier versions wrote in ``alerts.rule_kind``, read as today's word."""
+
 
 def _num(value: float | None) -> float | None:
     """NaN is stored as NULL: neither SQLite nor PostgreSQL round-trip it the same way."""
@@ -243,11 +255,6 @@ def update_open_alerts(
     )
 
 
-RETRACTED = "retracted"
-"""The state of an alert a rerun over the same days no longer produces, kept because it was
-acknowledged or already announced in an evening's digest (older stores said "withdrawn")."""
-
-
 @dataclass(frozen=True)
 class Retraction:
     """Why a rerun no longer produces an alert: recorded on every alert it retracts."""
@@ -414,7 +421,10 @@ def list_alerts(
     out = []
     for r in rows:
         ack = latest.get(r.id)
-        out.append(AlertRow(**r._mapping, acknowledged_by=ack["by"] if ack else None,
+        values = dict(r._mapping)
+        values["state"] = STORED_STATES.get(values["state"], values["state"])
+        values["rule_kind"] = STORED_KINDS.get(values["rule_kind"], values["rule_kind"])
+        out.append(AlertRow(**values, acknowledged_by=ack["by"] if ack else None,
                             acknowledged_at=ack["at"] if ack else None,
                             acknowledged_note=ack["note"] if ack else None))
     return out

@@ -107,7 +107,7 @@ alerts = Table(
     Column("rule_kind", String(20), nullable=False),
     Column("severity", String(10), nullable=False),
     Column("measure", String(100), nullable=False, default=""),
-    Column("state", String(12), nullable=False),  # open | cleared | withdrawn
+    Column("state", String(12), nullable=False),  # open | cleared | retracted (older: withdrawn)
     Column("cleared_on", Date, nullable=True),
     Column("level", Float, nullable=True),
     Column("opened_value", Float, nullable=True),

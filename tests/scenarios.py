@@ -27,7 +27,7 @@ kind = "jump"
 measure = "rolling:21"
 pairs = ["KLV/DUNQ"]
 delta = 0.4
-days = 10
+over_days = 10
 """
 
 INSTRUMENTS = """

@@ -311,7 +311,7 @@ def test_evaluate_gives_the_events_of_a_direct_replay(panel: pd.DataFrame) -> No
         {"name": "tight", "kind": "level", "measure": "rolling:30,min=20", "group": "core",
          "above": 0.55, "clear": 0.45, "remind_every": 4},
         {"name": "swing", "kind": "jump", "measure": "ewma:hl=10", "all": True, "delta": 0.3,
-         "days": 5},
+         "over_days": 5},
     ]
     groups = {"KLV": "core", "ORMA": "core", "PELL": "core", "BRAND": "other"}
     events = api.evaluate(panel, rules, groups)
@@ -368,7 +368,7 @@ def test_evaluate_gives_the_events_the_backfill_stores(
 def test_stale_rules_read_the_closes(closes: pd.DataFrame) -> None:
     flat = closes.copy()
     flat.iloc[10:16, 1] = flat.iloc[9, 1]  # DUNQ's close does not change for six days
-    rule = {"name": "frozen", "kind": "stale", "symbols": ["DUNQ"], "days": 4}
+    rule = {"name": "frozen", "kind": "stale", "symbols": ["DUNQ"], "after_days": 4}
     returns = api.returns(flat)
     with pytest.raises(ConfigError, match=r"^evaluate: closes: rule 'frozen' is a stale rule"):
         api.evaluate(returns, [rule])

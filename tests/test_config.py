@@ -49,6 +49,12 @@ def test_empty_file_gives_documented_defaults() -> None:
          "instruments[1].symbol: 'KLV' is already listed as instruments[0]"),
         ({"instruments": [{"symbol": "K L V"}]}, "instruments[0].symbol: 'K L V' is not 1 to 64"),
         ({"store": "sqlite:///x"}, "store: expected a table"),
+        ({"correlation": {"movers_days": 5}},
+         "correlation.movers_days: did you mean 'largest_changes_days'? 'movers_days' is its "
+         "old name"),
+        ({"correlation": {"gauge_days": 21}},
+         "correlation.gauge_days: did you mean 'group_average_days'? 'gauge_days' is its old "
+         "name"),
     ],
 )
 def test_errors_name_the_key_path_value_and_expectation(data: dict, message: str) -> None:

@@ -1,8 +1,8 @@
 """`comove bench alerts`: false alerts and detection delays of the shift-type rules.
 
 An operating-characteristic table, on simulated panels, for each shift-type rule at its
-defaults (``shift`` nested rolling:21 in rolling:126, ``shift`` adjacent rolling:63,
-``jump`` on rolling:63 with delta 0.3 over 5 days, ``cusum``):
+defaults (``shift`` rolling:21 within rolling:126, ``shift`` rolling:63 against the previous
+window, ``jump`` on rolling:63 with delta 0.3 over 5 days, ``cusum``):
 
 * false alerts per 1,000 pair-years on constant-correlation panels (every pair 0.36 by one
   common factor), (a) normal returns, (b) Student t(4) shocks under a GARCH(1,1)-like
@@ -41,9 +41,9 @@ from monitor.rules.sequential import (
 )
 
 RULES: tuple[dict[str, Any], ...] = (
-    {"name": "shift-nested", "kind": "shift", "measure": "rolling:21", "long": "rolling:126"},
-    {"name": "shift-adjacent", "kind": "shift", "test": "adjacent", "measure": "rolling:63"},
-    {"name": "jump", "kind": "jump", "measure": "rolling:63", "delta": 0.3, "days": 5},
+    {"name": "shift-within", "kind": "shift", "measure": "rolling:21", "baseline": "rolling:126"},
+    {"name": "shift-previous", "kind": "shift", "compare": "previous", "measure": "rolling:63"},
+    {"name": "jump", "kind": "jump", "measure": "rolling:63", "delta": 0.3, "over_days": 5},
     {"name": "cusum", "kind": "cusum"},
 )
 """``jump`` has no default ``delta``; 0.3 over 5 days is the desk example of the

@@ -37,7 +37,7 @@ hold = 2
 name = "regime"
 kind = "shift"
 measure = "rolling:21"
-long = "rolling:126"
+baseline = "rolling:126"
 all = true
 z = 4.0
 
@@ -47,7 +47,7 @@ kind = "jump"
 measure = "rolling:63"
 all = true
 delta = 0.3
-days = 5
+over_days = 5
 """
 
 

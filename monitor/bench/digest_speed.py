@@ -24,11 +24,11 @@ from monitor.calendar import Schedule, run_dates_ending
 from monitor.digest.context import (
     AlertHistory,
     AlertView,
-    BasketView,
     DataIssueView,
     DigestContext,
     DigestParameters,
     DriverView,
+    GroupAverageView,
     HeatmapView,
     Instrument,
     MoverView,
@@ -72,7 +72,7 @@ def synthetic_context(
     Returns
     -------
     DigestContext
-        With continuing, acknowledged and cleared alerts, movers, baskets, data issues
+        With continuing, acknowledged and cleared alerts, movers, group_averages, data issues
         and one heatmap per group (correlations from a one-factor-per-group model).
     """
     rng = np.random.default_rng(seed)
@@ -81,7 +81,7 @@ def synthetic_context(
     per_group = max(1, instruments // groups)
     members: list[list[Instrument]] = []
     heatmaps = []
-    baskets = []
+    group_averages = []
     for g in range(groups):
         group_name, prefix = _GROUPS[g % len(_GROUPS)]
         group = [
@@ -97,7 +97,7 @@ def synthetic_context(
         np.fill_diagonal(matrix, 1.0)
         heatmaps.append(HeatmapView(group_name, [m.symbol for m in group], matrix))
         history = np.clip(0.4 + np.cumsum(rng.normal(0, 0.01, 63)), -1, 1)
-        baskets.append(BasketView(
+        group_averages.append(GroupAverageView(
             group_name, float(history[-1]), float(history[-22]),
             pairs_used=per_group * (per_group - 1) // 2, instruments=per_group,
             history_dates=days[-63:], history_values=history,
@@ -156,7 +156,7 @@ def synthetic_context(
         acknowledged=[alert(i, "acknowledged") for i in range(3)],
         cleared=[alert(i, "cleared") for i in range(2)],
         movers=movers,
-        baskets=baskets,
+        group_averages=group_averages,
         data_quality=[DataIssueView("stale", universe[0].symbol, days[-3], "no close for 2 days")],
         heatmaps=heatmaps,
     )

@@ -64,11 +64,11 @@ _RULES = (
               ("hold", "2"))),
     RulePage("fast hedge level", "level", "warning", "ewma:hl=21",
              (("level", "0.50"), ("direction", "below"), ("clear_level", "0.55"))),
-    RulePage("regime shift", "shift", "warning", "rolling:63",
-             (("short", "rolling:21"), ("long", "rolling:126"), ("p_value", "0.01"))),
+    RulePage("regime shift", "shift", "warning", "rolling:21 vs rolling:126",
+             (("compare", "within"), ("baseline", "rolling:126"), ("false_alarms", "0.01"))),
     RulePage("sign flip", "sign", "info", "ewma:hl=21", (("hold", "3"),)),
-    RulePage("group average", "basket", "warning", "rolling:63", (("level", "0.80"),)),
-    RulePage("stale closes", "stale", "info", "", (("days", "3"),)),
+    RulePage("group average", "group-average", "warning", "rolling:63", (("level", "0.80"),)),
+    RulePage("stale closes", "stale", "info", "", (("after_days", "3"),)),
 )
 
 WEEKDAYS = Schedule()
@@ -146,8 +146,8 @@ def synthetic_context(
         start = int(rng.integers(first_day, len(calendar)))
         length = int(rng.integers(1, 40))
         end = start + length if start + length < len(calendar) else None
-        withdrawn = alert_id % 97 == 0
-        state = "withdrawn" if withdrawn else "open" if end is None else "cleared"
+        retracted = alert_id % 97 == 0
+        state = "retracted" if retracted else "open" if end is None else "cleared"
         acked = rng.random() < 0.5
         person = _PEOPLE[alert_id % len(_PEOPLE)] if acked else None
         peak = float(rng.uniform(-0.2, 0.95))
@@ -156,7 +156,7 @@ def synthetic_context(
             a, b = (instruments[i] for i in chosen[k])
             target: tuple[str, ...] = (a.symbol, b.symbol)
             kind = "pair"
-        elif rule.kind == "basket":
+        elif rule.kind == "group-average":
             k = -1
             target, kind = (_GROUPS[alert_id % len(_GROUPS)][0],), "group"
         else:
@@ -166,7 +166,7 @@ def synthetic_context(
             id=alert_id, state=state, severity=rule.severity,  # type: ignore[arg-type]
             rule_name=rule.name, rule_kind=rule.kind, target_kind=kind,  # type: ignore[arg-type]
             target=target, opened=calendar[start],
-            cleared=calendar[end] if end is not None and not withdrawn else None,
+            cleared=calendar[end] if end is not None and not retracted else None,
             peak=peak, acknowledged_by=person, measure=rule.measure,
         ))
         if k < 0:

@@ -22,20 +22,20 @@ from monitor import __version__
 from monitor.digest.context import (
     AlertHistory,
     AlertView,
-    BasketView,
     CrossMatrixView,
     DataIssueView,
     DigestContext,
     DigestParameters,
     DriverView,
+    GroupAverageView,
     HeatmapView,
     Instrument,
     MoverView,
     _finite,
 )
 from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
-from monitor.engine.basket import basket_gauge
 from monitor.engine.drivers import drivers
+from monitor.engine.group_average import group_average
 from monitor.engine.strength import describe
 from monitor.rules import Rule
 from monitor.rules.targets import GroupTargets, PairTargets
@@ -86,8 +86,8 @@ class DigestInputs:
     return_kind: str
     horizon: int
     level: float
-    movers_days: int
-    gauge_days: int
+    largest_changes_days: int
+    group_average_days: int
     history_days: int
     data_issues: Sequence[DataIssueView] = ()
     attention: str = ""
@@ -144,7 +144,7 @@ def build_context(inputs: DigestInputs) -> DigestContext:
     for facts in inputs.alerts:
         if not facts.announced:
             continue
-        if facts.opened_on in (day, inputs.as_of) and facts.state != "withdrawn":
+        if facts.opened_on in (day, inputs.as_of) and facts.state != "retracted":
             bucket = "new"
         elif facts.state == "cleared" and facts.cleared_on == day:
             bucket = "cleared"
@@ -158,13 +158,14 @@ def build_context(inputs: DigestInputs) -> DigestContext:
         views[bucket].append(_alert_view(facts, bucket, rule, inputs, matrix, column, dates, t,
                                          first_history, day))
     movers = _movers(inputs, matrix, symbols, t)
-    baskets, heatmaps = _groups(inputs, matrix, column, dates, t)
+    group_averages, heatmaps = _groups(inputs, matrix, column, dates, t)
     counts = [_typical_count(m) for m in inputs.measures]
     params = DigestParameters(
         measures=tuple(inputs.measures), observations=tuple(counts),
         return_kind=inputs.return_kind,  # type: ignore[arg-type]
         horizon_days=inputs.horizon, confidence_level=inputs.level,
-        mover_days=inputs.movers_days, basket_days=inputs.gauge_days,
+        largest_changes_days=inputs.largest_changes_days,
+        group_average_days=inputs.group_average_days,
     )
     return DigestContext(
         desk=inputs.desk, as_of=day, data_through=inputs.data_through or day,
@@ -172,7 +173,7 @@ def build_context(inputs: DigestInputs) -> DigestContext:
         data_attention=bool(inputs.attention), attention_message=inputs.attention,
         new_alerts=tuple(views["new"]), continuing=tuple(views["continuing"]),
         acknowledged=tuple(views["acknowledged"]), cleared=tuple(views["cleared"]),
-        movers=tuple(movers), baskets=tuple(baskets),
+        movers=tuple(movers), group_averages=tuple(group_averages),
         data_quality=tuple(inputs.data_issues), heatmaps=tuple(heatmaps),
         cross_matrices=tuple(cross_matrices(inputs, matrix, column, t)),
     )
@@ -191,7 +192,7 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
                 first_history: int, day: dt.date) -> AlertView:
     event = facts.event_today or {}
     level, clear_level, direction = (None, None, "") if rule is None else _rule_levels(rule)
-    measure = ",".join(rule.measures()) if rule is not None and rule.measures() else ""
+    measure = rule.measure_label() if rule is not None else ""
     a_text, _, b_text = facts.target.partition("/")
     a = _instrument(a_text, inputs.names)
     b = _instrument(b_text, inputs.names) if b_text else Instrument(symbol="", name="")
@@ -221,7 +222,7 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
         if len(members) >= 2:
             last = list(matrix_on_pair_dates(matrix[:, members], primary, start=t,
                                              stop=t + 1, level=inputs.level))[-1]
-            value = basket_gauge(last.value, np.arange(len(members)), t).value
+            value = group_average(last.value, np.arange(len(members)), t).value
     elif event:
         value = float(event.get("value") or math.nan)
         low = float(event.get("low") or math.nan)
@@ -267,7 +268,7 @@ def _alert_groups(a_text: str, b_text: str, rule: Rule | None,
 def _movers(inputs: DigestInputs, matrix: np.ndarray, symbols: list[str], t: int
             ) -> list[MoverView]:
     pairs = np.asarray(inputs.monitored_pairs, dtype=np.int64).reshape(-1, 2)
-    before_t = t - inputs.movers_days
+    before_t = t - inputs.largest_changes_days
     if pairs.size == 0 or before_t < 0:
         return []
     measure = inputs.measures[0]
@@ -286,11 +287,11 @@ def _movers(inputs: DigestInputs, matrix: np.ndarray, symbols: list[str], t: int
 
 
 def _groups(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
-            dates: list[dt.date], t: int) -> tuple[list[BasketView], list[HeatmapView]]:
-    baskets: list[BasketView] = []
+            dates: list[dt.date], t: int) -> tuple[list[GroupAverageView], list[HeatmapView]]:
+    group_averages: list[GroupAverageView] = []
     heatmaps: list[HeatmapView] = []
     if t < 0:
-        return baskets, heatmaps
+        return group_averages, heatmaps
     measure = inputs.measures[0]
     first = max(0, t - inputs.history_days + 1)
     for group, members in inputs.groups.items():
@@ -304,12 +305,12 @@ def _groups(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
         used = 0
         positions = np.arange(len(cols))
         for d in days:
-            gauge = basket_gauge(d.value, positions, d.t)
-            averages.append(gauge.value)
-            used = gauge.pairs_used
+            day_average = group_average(d.value, positions, d.t)
+            averages.append(day_average.value)
+            used = day_average.pairs_used
         history = np.array(averages, dtype=np.float64)
-        before_index = len(days) - 1 - inputs.gauge_days
-        baskets.append(BasketView(
+        before_index = len(days) - 1 - inputs.group_average_days
+        group_averages.append(GroupAverageView(
             group=group, average_now=float(history[-1]),
             average_before=float(history[before_index]) if before_index >= 0 else math.nan,
             pairs_used=int(used), instruments=len(cols),
@@ -317,7 +318,7 @@ def _groups(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
         ))
         heatmaps.append(HeatmapView(group=group, symbols=[s for s in members if s in column],
                                     matrix=np.array(days[-1].value)))
-    return baskets, heatmaps
+    return group_averages, heatmaps
 
 
 def cross_matrices(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],
@@ -344,7 +345,8 @@ def cross_matrices(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str
             continue
         symbols = list(dict.fromkeys(rows + columns))
         block = matrix[:, [column[s] for s in symbols]]
-        last = list(stream(block, measure, start=t, stop=t + 1, level=inputs.level))[-1]
+        last = list(matrix_on_pair_dates(block, measure, start=t, stop=t + 1,
+                                         level=inputs.level))[-1]
         position = {s: k for k, s in enumerate(symbols)}
         values = np.array(last.value, dtype=np.float64)[
             np.ix_([position[s] for s in rows], [position[s] for s in columns])]

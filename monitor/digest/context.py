@@ -208,7 +208,7 @@ class AlertView:
 
     @property
     def pair(self) -> str:
-        """The pair as "A / B" by symbol; a group or instrument target (basket and stale
+        """The pair as "A / B" by symbol; a group or instrument target (group-average and stale
         rules) leaves `b` empty and shows its own name."""
         if not self.b.symbol:
             return self.a.symbol
@@ -244,7 +244,7 @@ class MoverView:
     value_now : float
         Value on the as-of date.
     value_before : float
-        Value `DigestParameters.mover_days` business days earlier; NaN if unknown.
+        Value `DigestParameters.largest_changes_days` business days earlier; NaN if unknown.
     """
 
     a: Instrument
@@ -265,7 +265,7 @@ class MoverView:
 
 
 @dataclass(frozen=True, eq=False)
-class BasketView:
+class GroupAverageView:
     """A group's average pairwise correlation, now and a month earlier.
 
     Attributes
@@ -275,7 +275,7 @@ class BasketView:
     average_now : float
         Mean correlation over the group's pairs with a value on the as-of date.
     average_before : float
-        The same `DigestParameters.basket_days` business days earlier; NaN if unknown.
+        The same `DigestParameters.group_average_days` business days earlier; NaN if unknown.
     pairs_used : int
         Pairs that had a value on the as-of date (of n (n - 1) / 2).
     instruments : int
@@ -299,7 +299,7 @@ class BasketView:
         _float_array(self, "history_values")
         if len(self.history_dates) != self.history_values.size:
             raise ValueError(
-                f"basket {self.group!r}: {len(self.history_dates)} dates but "
+                f"group average {self.group!r}: {len(self.history_dates)} dates but "
                 f"{self.history_values.size} values"
             )
 
@@ -415,9 +415,9 @@ class DigestParameters:
         Return horizon in business days (1 = daily returns).
     confidence_level : float
         Level of every confidence band, e.g. 0.95.
-    mover_days : int
+    largest_changes_days : int
         Horizon of the "largest changes" table.
-    basket_days : int
+    group_average_days : int
         How far back the group averages are compared (about a month: 21).
     """
 
@@ -426,8 +426,8 @@ class DigestParameters:
     return_kind: ReturnKind
     horizon_days: int = 1
     confidence_level: float = 0.95
-    mover_days: int = 5
-    basket_days: int = 21
+    largest_changes_days: int = 5
+    group_average_days: int = 21
 
     def __post_init__(self) -> None:
         tuple_fields(self, "measures", "observations")
@@ -469,8 +469,8 @@ class DigestContext:
     cleared : tuple of AlertView
         Alerts that cleared on `as_of`.
     movers : tuple of MoverView
-        Pairs whose value changed most over `parameters.mover_days`, alert or not.
-    baskets : tuple of BasketView
+        Pairs whose value changed most over `parameters.largest_changes_days`, alert or not.
+    group_averages : tuple of GroupAverageView
         One per group, in the desk's group order.
     data_quality : tuple of DataIssueView
         Stale or missing instruments, suspect ticks, restated closes.
@@ -501,7 +501,7 @@ class DigestContext:
     acknowledged: Sequence[AlertView] = ()
     cleared: Sequence[AlertView] = ()
     movers: Sequence[MoverView] = ()
-    baskets: Sequence[BasketView] = ()
+    group_averages: Sequence[GroupAverageView] = ()
     data_quality: Sequence[DataIssueView] = ()
     heatmaps: Sequence[HeatmapView] = ()
     pages_url: str = ""
@@ -510,7 +510,7 @@ class DigestContext:
     def __post_init__(self) -> None:
         tuple_fields(
             self, "new_alerts", "continuing", "acknowledged", "cleared", "movers",
-            "baskets", "data_quality", "heatmaps", "cross_matrices",
+            "group_averages", "data_quality", "heatmaps", "cross_matrices",
         )
 
     @property
@@ -524,7 +524,7 @@ __all__ = [
     "SEVERITY_RANK",
     "AlertHistory",
     "AlertView",
-    "BasketView",
+    "GroupAverageView",
     "CrossMatrixView",
     "DataIssueView",
     "DigestContext",

@@ -83,7 +83,7 @@ def build_figures(
     Parameters
     ----------
     ctx : DigestContext
-        The evening's context (its baskets and heatmaps, in the desk's group order).
+        The evening's context (its group_averages and heatmaps, in the desk's group order).
     new_alerts : sequence of AlertView
         The new alerts in display order; each with a history gets one chart, numbered in
         that order. NaN values in a history are drawn as gaps.
@@ -94,7 +94,7 @@ def build_figures(
         Every chart in the order shown: alerts, group averages, heatmaps, matrices across
         groups.
     by_key : dict of str to DigestImage
-        The same images by template key ("alert-1", "basket-1", "heatmap-1",
+        The same images by template key ("alert-1", "group-average-1", "heatmap-1",
         "across-1", ...).
     tables : list of MatrixTable
         One per heatmap, instruments in the drawn (clustered) order; a group of fewer
@@ -130,17 +130,18 @@ def build_figures(
         )
         add(f"alert-{index}", f"alert-{index:02d}", chart, _alert_alt(alert))
 
-    for index, basket in enumerate(ctx.baskets, start=1):
-        if not basket.history_dates:
+    for index, group in enumerate(ctx.group_averages, start=1):
+        if not group.history_dates:
             continue
-        chart = png_charts.basket_history_chart(
-            basket.history_dates, basket.history_values, title=f"{basket.group}: average"
+        chart = png_charts.group_average_chart(
+            group.history_dates, group.history_values, title=f"{group.group}: average"
         )
         add(
-            f"basket-{index}", f"group-{index:02d}-{_slug(basket.group)}-average", chart,
-            f"Average pairwise correlation of {basket.group} over "
-            f"{len(basket.history_dates)} days: now {format_corr(basket.average_now)}, "
-            f"{ctx.parameters.basket_days} days earlier {format_corr(basket.average_before)}.",
+            f"group-average-{index}", f"group-{index:02d}-{_slug(group.group)}-average", chart,
+            f"Average pairwise correlation of {group.group} over "
+            f"{len(group.history_dates)} days: now {format_corr(group.average_now)}, "
+            f"{ctx.parameters.group_average_days} days earlier "
+            f"{format_corr(group.average_before)}.",
         )
 
     tables: list[MatrixTable] = []

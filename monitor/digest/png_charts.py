@@ -486,7 +486,7 @@ def cross_heatmap_chart(
     return _to_image(matrix_figure(row_symbols, column_symbols, matrix, title=title))
 
 
-def basket_history_chart(
+def group_average_chart(
     dates: Sequence[date] | npt.NDArray[np.datetime64],
     values: Sequence[float] | Float1D,
     *,

@@ -2,21 +2,26 @@
 
 Input: a returns matrix (T, N), NaN = missing. Output, per day and per pair: a
 correlation (rolling Pearson, EWMA, rolling Spearman), its count or Kish effective count, a
-Fisher band and a stale flag; plus shift tests, day drivers, basket gauges and words.
+Fisher band and a stale flag; plus shift tests, day drivers, group averages and words.
 
 Modules, one concept each: ``spec`` (measure syntax), ``layout`` (tiles and pair lists),
 ``windows`` (window bounds and row stacks), ``kernels`` (sums and moments inside windows),
 ``rolling`` (trailing-window measures), ``ewma``, ``rank``, ``bands``, ``shift``,
-``drivers``, ``basket``, ``strength``, ``stream`` (entry points), ``pairdates`` (every pair
+``drivers``, ``group_average``, ``strength``, ``stream`` (entry points), ``pairdates`` (every pair
 on its own dates: the entry point the rules, ``series``, the digest and the pages use).
 """
 
 from __future__ import annotations
 
 from monitor.engine.bands import DEFAULT_LEVEL, fisher_band, normal_quantile
-from monitor.engine.basket import BasketDay, basket_gauge, basket_pairs, basket_series
 from monitor.engine.drivers import Drivers, drivers
 from monitor.engine.ewma import hull_update, kish_effective_count
+from monitor.engine.group_average import (
+    GroupAverageDay,
+    group_average,
+    group_average_series,
+    group_pairs,
+)
 from monitor.engine.pairdates import matrix_on_pair_dates, own_standardise, stream_on_pair_dates
 from monitor.engine.rank import average_ranks
 from monitor.engine.shift import (
@@ -40,7 +45,7 @@ from monitor.engine.strength import (
 __all__ = [
     "DEFAULT_LADDER",
     "DEFAULT_LEVEL",
-    "BasketDay",
+    "GroupAverageDay",
     "DayResult",
     "Drivers",
     "Measure",
@@ -48,9 +53,9 @@ __all__ = [
     "StrengthLadder",
     "adjacent_shift",
     "average_ranks",
-    "basket_gauge",
-    "basket_pairs",
-    "basket_series",
+    "group_average",
+    "group_pairs",
+    "group_average_series",
     "describe",
     "direction",
     "drivers",

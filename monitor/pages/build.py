@@ -20,8 +20,8 @@ import pandas as pd
 
 from monitor import __version__
 from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
-from monitor.engine.basket import basket_gauge
 from monitor.engine.drivers import drivers
+from monitor.engine.group_average import group_average
 from monitor.pages.context import (
     AckView,
     AlertSpan,
@@ -84,7 +84,7 @@ def _history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.d
 def _group_history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.date],
                    levels: Sequence[float]) -> MeasureHistory:
     positions = np.arange(len(cols))
-    values = np.array([basket_gauge(d.value, positions, d.t).value
+    values = np.array([group_average(d.value, positions, d.t).value
                        for d in matrix_on_pair_dates(matrix[:, cols], measure)])
     nan = np.full(len(values), np.nan)
     return MeasureHistory(measure=f"group average, {measure}", dates=dates, values=values,
@@ -129,7 +129,7 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
         kind: TargetKind
         if "/" in alert.target:
             kind, target = "pair", tuple(alert.target.split("/", 1))
-        elif alert.rule_kind == "basket":
+        elif alert.rule_kind == "group-average":
             kind, target = "group", (alert.target,)
         else:
             kind, target = "instrument", (alert.target,)
@@ -140,7 +140,7 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
             rule_kind=alert.rule_kind, target_kind=kind, target=target,
             opened=alert.opened_on, cleared=alert.cleared_on, peak=_num(alert.peak_value),
             acknowledged_by=alert.acknowledged_by, groups=groups,
-            measure=",".join(rule.measures()) if rule is not None else "",
+            measure=rule.measure_label() if rule is not None else "",
             p_value=_opening_p(events_by_alert.get(int(alert.id), ())),
             excess=_excess(alert.opened_value, alert.level),
         ))
@@ -183,18 +183,18 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
     for label, alerts in by_target.items():
         if "/" in label:
             continue
-        basket = alerts[0].rule_kind == "basket"
-        members = list(inputs.groups.get(label, ())) if basket else []
+        is_group = alerts[0].rule_kind == "group-average"
+        members = list(inputs.groups.get(label, ())) if is_group else []
         charts: list[MeasureHistory] = []
-        if basket:
+        if is_group:
             cols = [column[s] for s in members if s in column]
             rule = rules.get(alerts[0].rule)
             if rule is not None and len(cols) >= 2 and rule.measures():
                 charts.append(_group_history(matrix, cols, rule.measures()[0], dates,
                                                 _levels(rule)))
         targets.append(TargetPage(
-            kind="group" if basket else "instrument", label=label,
-            name="" if basket else inputs.names.get(label, ""), members=members,
+            kind="group" if is_group else "instrument", label=label,
+            name="" if is_group else inputs.names.get(label, ""), members=members,
             measures=charts, spans=_spans(alerts, rules),
             events=_events(alerts, events_by_alert),
             acknowledgements=_acks(alerts, acks_by_alert)))
@@ -202,9 +202,9 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
     tables = {str(t.get("name")): t for t in inputs.rule_tables}
     rule_pages = [
         RulePage(name=rule.name, kind=rule.kind, severity=rule.severity,
-                 measure=",".join(rule.measures()),
+                 measure=rule.measure_label(),
                  parameters=[(k, _text(v)) for k, v in tables.get(rule.name, {}).items()
-                             if k not in ("name", "kind", "description")],
+                             if k not in ("name", "kind", "description", "severity", "measure")],
                  description=str(tables.get(rule.name, {}).get("description", rule.summary)),
                  method_note=rule.method_note() or "")
         for rule in inputs.rules
@@ -268,7 +268,7 @@ def _text(value: Any) -> str:
 def _spans(alerts: Sequence[Any], rules: Mapping[str, Rule]) -> list[AlertSpan]:
     out = []
     for a in alerts:
-        if a.state == "withdrawn":
+        if a.state == "retracted":
             continue
         rule = rules.get(a.rule)
         measure = rule.measures()[0] if rule is not None and rule.measures() else ""

@@ -10,7 +10,7 @@ facts, `monitor.pages.render` turns them into files.
 
 Decisions a reader of the code should know:
 
-- Basket and stale-data alerts get a *target page* of their own (`TargetPage`), laid out
+- Group-average and stale-data alerts get a *target page* of their own (`TargetPage`), laid out
   like a pair page without drivers, rather than only a link to their rule: a reviewer asks
   "what happened to this group" as often as "what did this rule do".
 - A rule page lists the alerts of `SiteContext.alerts` with that rule name: the alerts are
@@ -33,6 +33,7 @@ from monitor.pages.records import (
     RUN_KINDS,
     RUN_STATUSES,
     SEVERITIES,
+    STATE_LABELS,
     TARGET_KINDS,
     AckView,
     AlertSpan,
@@ -76,6 +77,7 @@ __all__ = [
     "RunStatus",
     "RunView",
     "SEVERITIES",
+    "STATE_LABELS",
     "SiteContext",
     "SiteParameters",
     "TARGET_KINDS",
@@ -90,6 +92,7 @@ __all__ = [
     "RUN_KINDS",
     "RUN_STATUSES",
     "SEVERITIES",
+    "STATE_LABELS",
     "TARGET_KINDS",
     "AckView",
     "AlertSpan",
@@ -153,7 +156,7 @@ class PairPage:
 
 @dataclass(frozen=True)
 class TargetPage:
-    """The page of a group (basket rules) or of one instrument (stale-data rules).
+    """The page of a group (group-average rules) or of one instrument (stale-data rules).
 
     Attributes
     ----------
@@ -194,7 +197,7 @@ class RulePage:
     name : str
         The desk's name for it.
     kind : str
-        Its kind ("level", "shift", "basket", "stale", ...).
+        Its kind ("level", "shift", "group-average", "stale", ...).
     severity : {"critical", "warning", "info"}
         Severity of its alerts.
     measure : str
@@ -291,7 +294,7 @@ class SiteContext:
     groups : mapping of str to str
         Symbol -> group, used for the group filter and to fill `AlertSummary.groups`.
     targets : tuple of TargetPage
-        Pages of groups and single instruments watched by basket and stale-data rules.
+        Pages of groups and single instruments watched by group-average and stale-data rules.
     mutes : tuple of MuteView
         Every mute, oldest first.
     """

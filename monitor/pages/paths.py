@@ -11,7 +11,7 @@ Layout of a built site (all links are relative, so it works opened straight from
     rules/<name>.html         one rule: its parameters and its alerts
     pairs/<name>.html         one pair: measure histories, alert periods, events,
     pairs/<name>-<k>.svg      acknowledgements and drivers; chart k of the page
-    targets/<name>.html       a group (basket rules) or one instrument (stale-data rules)
+    targets/<name>.html       a group (group-average rules) or one instrument (stale-data rules)
     runs.html                 the runs ledger
     digests.html              links to archived digests (copied there by the pipeline)
     site.js  site.css  favicon.svg

@@ -18,7 +18,7 @@ from monitor.errors import ComoveError
 from monitor.pages.paths import check_relative_path
 from monitor.templating import tuple_fields
 
-AlertState = Literal["open", "cleared", "withdrawn"]
+AlertState = Literal["open", "cleared", "retracted"]
 
 
 TargetKind = Literal["pair", "group", "instrument"]
@@ -33,7 +33,15 @@ RunKind = Literal["daily", "backfill"]
 RunStatus = Literal["running", "done", "failed", "interrupted"]
 
 
-ALERT_STATES: tuple[str, ...] = ("open", "cleared", "withdrawn")
+ALERT_STATES: tuple[str, ...] = ("open", "cleared", "retracted")
+
+
+STATE_LABELS: dict[str, str] = {
+    "open": "open",
+    "cleared": "cleared",
+    "retracted": "retracted (a rerun no longer produces it)",
+}
+"""What the index filter offers for each state: a retracted alert needs its explanation."""
 
 
 SEVERITIES: tuple[str, ...] = ("critical", "warning", "info")
@@ -111,20 +119,20 @@ class AlertSummary:
     ----------
     id : int or str
         The alert's id in the store.
-    state : {"open", "cleared", "withdrawn"}
-        "withdrawn": a rerun over the same days no longer produces the alert.
+    state : {"open", "cleared", "retracted"}
+        "retracted": a rerun over the same days no longer produces the alert.
     severity : {"critical", "warning", "info"}
         Written out as a word wherever it is shown.
     rule_name, rule_kind : str
         The desk's name of the rule (e.g. "utilities hedge") and its kind (e.g. "level").
     target_kind : {"pair", "group", "instrument"}
-        What the rule watches: a pair, a group (basket rules) or one instrument (stale data).
+        What the rule watches: a pair, a group (group-average rules) or one instrument (stale data).
     target : tuple of str
         The two symbols of a pair, else the one group name or symbol.
     opened : date
         The alert's first day.
     cleared : date or None
-        The day it cleared; None while open or when withdrawn.
+        The day it cleared; None while open or when retracted.
     peak : float
         Most extreme value of the measure while the alert was open; NaN when unknown.
     acknowledged_by : str or None

@@ -28,6 +28,7 @@ from monitor.pages import svg_charts
 from monitor.pages.context import (
     ALERT_STATES,
     SEVERITIES,
+    STATE_LABELS,
     AckView,
     AlertSpan,
     DriversView,
@@ -113,7 +114,8 @@ class _SiteRenderer:
         template = self.environment.get_template(f"pages/{name}")
         text = template.render(
             ctx=self.ctx, root=root, current=current, cautions=self.cautions,
-            severities=SEVERITIES, states=ALERT_STATES, event_words=EVENT_WORDS,
+            severities=SEVERITIES, states=ALERT_STATES, state_labels=STATE_LABELS,
+            event_words=EVENT_WORDS,
             chart_key=svg_charts.HISTORY_CHART_KEY, rule_path=rule_page_path, **values,
         )
         return text.encode("utf-8")

@@ -192,7 +192,7 @@ class FloodDay:
     day : date
         The day the alerts opened.
     count : int
-        Alerts the rule opened that day (withdrawn ones included: the index lists them).
+        Alerts the rule opened that day (retracted ones included: the index lists them).
     strongest : tuple of AlertRow
         The `FLOOD_STRONGEST` with the strongest evidence (`evidence_order`).
     more : int

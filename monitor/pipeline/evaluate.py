@@ -281,7 +281,7 @@ def _commit_days(store: Store, plan: Plan, scope: str, book: AlertBook, days: li
     rules = list(plan.rule_names)
     with store.begin() as conn:
         touched = alerts_store.delete_events_between(conn, rules, days[0].date, days[-1].date)
-        measures = {rule.name: ",".join(rule.measures()) for rule in plan.rules}
+        measures = {rule.name: rule.measure_label() for rule in plan.rules}
         touched |= alerts_store.write_events(
             conn, [e for day in days for e in day.events], measures)
         for day in days:

@@ -7,7 +7,7 @@ Pure: numpy in, arrays and dataclasses out; no storage, clock or disk. See
 from __future__ import annotations
 
 from monitor.rules.base import Rule
-from monitor.rules.basket import BasketRule
+from monitor.rules.group_average import GroupAverageRule
 from monitor.rules.inputs import Condition, DayInputs, MeasureDay, MeasureLike, take_pairs
 from monitor.rules.jump import JumpRule
 from monitor.rules.level import LevelRule
@@ -29,7 +29,7 @@ from monitor.rules.targets import GroupTargets, PairLayout, PairTargets, SymbolT
 
 __all__ = [
     "RULE_KINDS",
-    "BasketRule",
+    "GroupAverageRule",
     "Condition",
     "DayInputs",
     "GroupTargets",

@@ -27,7 +27,7 @@ SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
 
 COMMON_PARAMETERS: tuple[Param, ...] = (
     Param("name", "str", "Unique name (letters, digits, '-', '_', '.').", required=True),
-    Param("kind", "str", "level, shift, jump, sign, basket, stale or cusum.", required=True),
+    Param("kind", "str", "level, shift, jump, sign, group-average, stale or cusum.", required=True),
     Param("severity", "str", "How urgent its alerts are.", default="warning", choices=SEVERITIES),
     Param(
         "remind_every",
@@ -88,7 +88,7 @@ BAND_VARIANCE_PARAMETER = Param(
     choices=("robust", "fisher"),
 )
 """Shared by the rules that decide on a confidence band (``sign``, ``level`` with
-``confident``)."""
+``require_band``)."""
 
 BAND_NOTES = {
     "robust": "robust band (Fisher band widened by the tail factor of the volatility-"
@@ -209,6 +209,11 @@ class Rule(ABC):
     def measures(self) -> list[str]:
         """Canonical texts of the measures the rule reads today."""
         return []
+
+    def measure_label(self) -> str:
+        """The measures the rule reads as one label for people: joined with " vs " (a comma
+        already separates a measure's own options, e.g. ``rolling:21,min=17``); "" for none."""
+        return " vs ".join(self.measures())
 
     def lags(self) -> list[tuple[str, int]]:
         """``(measure text, lag)`` couples the rule reads from earlier days."""

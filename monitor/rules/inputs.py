@@ -21,7 +21,7 @@ Then for every business day it builds one :class:`DayInputs`:
   :class:`MeasureDay`), either (P_all,) aligned to ``layout.pairs`` (one
   :class:`~monitor.rules.targets.PairLayout` built once per run and reused every day) or
   full (N, N) matrices (``layout`` may then be None). Rules read ``low`` / ``high`` only
-  when they need the band (``confident`` levels, ``sign``) or when an event reports it, so
+  when they need the band (``require_band`` levels, ``sign``) or when an event reports it, so
   a lazily computed band is not forced on quiet days.
 * ``lagged[(text, lag)]`` — the same, as it stood ``lag`` business days earlier; before the
   history is that long, pass :meth:`MeasureDay.missing` (all NaN), never leave it out.
@@ -29,8 +29,8 @@ Then for every business day it builds one :class:`DayInputs`:
   since each instrument's last new close, and business days its close has not changed
   (NaN for an instrument with no close yet).
 
-A missing key is a wiring error and raises ``KeyError`` naming it. Basket averages are not
-an input: a basket rule averages its group's pairs from ``measures`` itself.
+A missing key is a wiring error and raises ``KeyError`` naming it. Group averages are not
+an input: a group-average rule averages its group's pairs from ``measures`` itself.
 """
 
 from __future__ import annotations
@@ -245,10 +245,10 @@ class Condition:
         ``clear`` are False: an open alert stays open and a breach streak neither grows
         nor breaks.
     value : float array
-        The measure's value today (basket: the group average; stale: days without a fresh
+        The measure's value today (group-average: the group average; stale: days without a fresh
         close).
     level : float array
-        The opening level (level, basket), z threshold (shift), ``delta`` (jump),
+        The opening level (level, group-average), z threshold (shift), ``delta`` (jump),
         0 (sign), ``days`` (stale).
     excess : float array
         How far beyond the opening level, positive when breached; the alert book keeps the
@@ -261,7 +261,7 @@ class Condition:
     source : MeasureLike or None
         The measure ``low``, ``high`` and ``n`` are read from.
     count : float array or None
-        ``n`` when it is not the measure's (basket: pairs averaged).
+        ``n`` when it is not the measure's (group-average: pairs averaged).
 
     Notes
     -----

@@ -1,8 +1,8 @@
-"""The ``jump`` rule: a pair's correlation moved by at least ``delta`` over ``days`` days.
+"""The ``jump`` rule: a pair's correlation moved by at least ``delta`` over ``over_days`` days.
 
-The move is value_t - value_{t-days} (the pipeline supplies the lagged value, see
+The move is value_t - value_{t-over_days} (the pipeline supplies the lagged value, see
 :mod:`monitor.rules.inputs`). ``direction`` picks rises (``up``), falls (``down``) or
-both (``either``, the default). An alert clears once the move over ``days`` is back under
+both (``either``, the default). An alert clears once the move over ``over_days`` is back under
 half of ``delta`` in the watched direction, a dead-band so that a move hovering at
 ``delta`` does not flap.
 
@@ -33,7 +33,7 @@ _TOLERANCE = 1e-12
 
 @dataclass(frozen=True, eq=False, kw_only=True)
 class JumpRule(Rule):
-    """The correlation moved by at least ``delta`` over ``days`` business days."""
+    """The correlation moved by at least ``delta`` over ``over_days`` business days."""
 
     kind: ClassVar[str] = "jump"
     summary: ClassVar[str] = ("The correlation moved by at least delta over a few days (a raw "
@@ -43,7 +43,7 @@ class JumpRule(Rule):
         Param("delta", "float", "Smallest move (absolute) that opens: a raw threshold on the "
               "change of the correlation, with no false-alarm rate behind it.", required=True,
               minimum=0.01, maximum=2),
-        Param("days", "int", "Business days the move is measured over.", default=5, minimum=1),
+        Param("over_days", "int", "Business days the move is measured over.", default=5, minimum=1),
         Param("direction", "str", "Which moves count.", default="either",
               choices=("up", "down", "either")),
     )
@@ -51,7 +51,7 @@ class JumpRule(Rule):
     targets: PairTargets
     measure: str
     delta: float
-    days: int
+    over_days: int
     direction: Direction
 
     @classmethod
@@ -64,7 +64,7 @@ class JumpRule(Rule):
             targets=resolve_pairs(reader, universe),
             measure=read_measure(reader, "measure", default_measure).text,
             delta=reader.read_number("delta"),
-            days=reader.read_int("days"),
+            over_days=reader.read_int("over_days"),
             direction=cast(Direction, reader.read_str("direction")),
         )
 
@@ -72,20 +72,20 @@ class JumpRule(Rule):
         return [self.measure]
 
     def lags(self) -> list[tuple[str, int]]:
-        return [(self.measure, self.days)]
+        return [(self.measure, self.over_days)]
 
     def pairs_needed(self) -> IntArray:
         return self.targets.pairs
 
     def method_note(self) -> str:
-        return (f"raw threshold: a move of at least {self.delta:g} over {self.days} business "
+        return (f"raw threshold: a move of at least {self.delta:g} over {self.over_days} business "
                 "days; no false-alarm rate is stated (short-window correlations move a lot "
                 "by chance).")
 
     def evaluate(self, day: DayInputs) -> Condition:
         pairs = self.targets.pairs
         today = day.measure(self.measure, pairs)
-        before = day.lagged_measure(self.measure, self.days, pairs)
+        before = day.lagged_measure(self.measure, self.over_days, pairs)
         move = today.value - before.value
         # The move in the watched direction: positive when it goes the alarming way.
         if self.direction == "up":

@@ -3,11 +3,11 @@
 ``above = 0.7`` opens when the correlation is above 0.7 and clears only once it is below
 ``clear`` (default ``0.7 - 0.05``); ``below`` mirrors it (default clear ``below + 0.05``).
 Between the two the alert keeps its state, so a pair hovering at the level raises one
-alert, not one a day. ``confident = true`` opens only when the whole confidence band is
+alert, not one a day. ``require_band = true`` opens only when the whole confidence band is
 beyond the level (band low > above, or band high < below); clearing still looks at the
 value itself.
 
-The threshold reading and test are shared with the ``basket`` rule.
+The threshold reading and test are shared with the ``group-average`` rule.
 """
 
 from __future__ import annotations
@@ -113,7 +113,7 @@ def threshold_condition(
     value : float array (P,)
         The measured value; NaN gives neither breach nor clear.
     test : float array (P,), optional
-        What must be beyond the level to open (the band edge for ``confident``);
+        What must be beyond the level to open (the band edge for ``require_band``);
         defaults to ``value``.
     source : MeasureLike, optional
         The measure the band and count are reported from.
@@ -152,7 +152,7 @@ class LevelRule(Rule):
         MEASURE_PARAMETER,
         *THRESHOLD_PARAMETERS,
         Param(
-            "confident",
+            "require_band",
             "bool",
             "Open only when the whole confidence band is beyond the level.",
             default=False,
@@ -163,7 +163,7 @@ class LevelRule(Rule):
     targets: PairTargets
     measure: str
     threshold: Threshold
-    confident: bool
+    require_band: bool
     variance: str = "robust"
 
     @classmethod
@@ -176,7 +176,7 @@ class LevelRule(Rule):
             targets=resolve_pairs(reader, universe),
             measure=read_measure(reader, "measure", default_measure).text,
             threshold=read_threshold(reader),
-            confident=reader.read_bool("confident"),
+            require_band=reader.read_bool("require_band"),
             variance=reader.read_str("variance") or "robust",
         )
 
@@ -187,17 +187,17 @@ class LevelRule(Rule):
         return self.targets.pairs
 
     def history_rows(self) -> int:
-        return KURTOSIS_ROWS if self.confident and self.variance == "robust" else 0
+        return KURTOSIS_ROWS if self.require_band and self.variance == "robust" else 0
 
     def method_note(self) -> str | None:
-        if not self.confident:
+        if not self.require_band:
             return None
         return f"{BAND_NOTES[self.variance]}: opens when the whole band is beyond the level."
 
     def evaluate(self, day: DayInputs) -> Condition:
         today = day.measure(self.measure, self.targets.pairs)
         test = None
-        if self.confident:
+        if self.require_band:
             low, high = band_of(self.variance, today, day, self.targets.pairs)
             test = low if self.threshold.side == "above" else high
         return threshold_condition(

@@ -18,6 +18,7 @@ from dataclasses import dataclass
 from typing import Literal
 
 from monitor.errors import ConfigError
+from monitor.renamed import OLD_RULE_KEYS, OLD_RULE_VALUES, old_name_hint
 
 ParamType = Literal["int", "float", "str", "bool", "str_list", "str_or_list"]
 
@@ -130,6 +131,9 @@ class TableReader:
         """
         for key in self.table:
             if key not in self.params:
+                renamed = OLD_RULE_KEYS.get(self.kind, {}).get(key)
+                if renamed is not None:
+                    raise self.error(key, old_name_hint(key, renamed))
                 hint = suggestion(key, self.params)
                 raise self.error(key, f"unknown key for kind {self.kind!r}{hint}")
 
@@ -185,6 +189,9 @@ class TableReader:
             raise self.error(key, f"expected a string, got {_describe(value)}")
         choices = self.params[key].choices
         if choices and value not in choices:
+            renamed = OLD_RULE_VALUES.get(key, {}).get(value)
+            if renamed is not None:
+                raise self.error(key, old_name_hint(value, renamed))
             hint = suggestion(value, choices)
             raise self.error(key, f"{value!r} is not one of {', '.join(choices)}{hint}")
         return value

@@ -12,9 +12,10 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 
 from monitor.errors import ConfigError
+from monitor.renamed import OLD_RULE_KINDS, old_name_hint
 from monitor.rules.base import SEVERITIES, Rule
-from monitor.rules.basket import BasketRule
 from monitor.rules.cusum import CusumRule
+from monitor.rules.group_average import GroupAverageRule
 from monitor.rules.jump import JumpRule
 from monitor.rules.level import LevelRule
 from monitor.rules.params import Param, TableReader, suggestion
@@ -24,8 +25,8 @@ from monitor.rules.stale import StaleRule
 from monitor.rules.targets import IntArray, Universe
 
 RULE_KINDS: dict[str, type[Rule]] = {
-    rule.kind: rule for rule in (LevelRule, ShiftRule, JumpRule, SignRule, BasketRule, StaleRule,
-                                  CusumRule)
+    rule.kind: rule for rule in (LevelRule, ShiftRule, JumpRule, SignRule, GroupAverageRule,
+                                  StaleRule, CusumRule)
 }
 """Config word -> rule class."""
 
@@ -42,6 +43,8 @@ def _rule_class(table: Mapping[str, object], index: int) -> type[Rule]:
     known = ", ".join(sorted(RULE_KINDS))
     if kind is None:
         raise ConfigError(f"{label}.kind: missing required key (one of {known})")
+    if isinstance(kind, str) and kind in OLD_RULE_KINDS:
+        raise ConfigError(f"{label}.kind: {old_name_hint(kind, OLD_RULE_KINDS[kind])}")
     if not isinstance(kind, str) or kind not in RULE_KINDS:
         hint = suggestion(kind, RULE_KINDS) if isinstance(kind, str) else ""
         raise ConfigError(f"{label}.kind: unknown kind {kind!r}{hint}; known kinds: {known}")

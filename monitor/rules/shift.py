@@ -2,10 +2,10 @@
 
 Two tests on Fisher's z = atanh(r):
 
-* ``test = "nested"`` compares a short measure (``measure``, e.g. ``rolling:21``) with a
-  long one containing it (``long``, e.g. ``rolling:126``). The windows overlap, so the
+* ``compare = "within"`` compares a short measure (``measure``, e.g. ``rolling:21``) with a
+  longer baseline containing it (``baseline``, e.g. ``rolling:126``). The windows overlap, so the
   variance of the difference is 1/(n_s - 3) - 1/(n_l - 3), not the sum.
-* ``test = "adjacent"`` compares the latest W days with the W days before them (same
+* ``compare = "previous"`` compares the latest W days with the W days before them (same
   ``rolling:W`` or ``rank:W`` measure, read ``W`` business days earlier); the windows are
   disjoint, so the variances add: 1/(n_now - 3) + 1/(n_before - 3).
 
@@ -66,7 +66,7 @@ from monitor.rules.targets import IntArray, PairTargets, Universe, resolve_pairs
 RANK_VARIANCE_FACTOR = 1.06
 """Spearman's atanh variance relative to Pearson's (Fieller, Hartley & Pearson 1957)."""
 
-ShiftTest = Literal["nested", "adjacent"]
+ShiftCompare = Literal["within", "previous"]
 Variance = Literal["robust", "fisher"]
 Fdr = Literal["none", "bh", "by"]
 DEFAULT_FDR_LEVEL = 0.05
@@ -86,7 +86,8 @@ def scaled_text(text: str) -> str:
 
 @dataclass(frozen=True, eq=False, kw_only=True)
 class ShiftRule(Rule):
-    """Regime shift in a pair's correlation by a Fisher z test (nested or adjacent)."""
+    """Regime shift in a pair's correlation by a Fisher z test (within a baseline, or
+    against the previous window)."""
 
     kind: ClassVar[str] = "shift"
     summary: ClassVar[str] = (
@@ -96,14 +97,15 @@ class ShiftRule(Rule):
     own_parameters: ClassVar[tuple[Param, ...]] = (
         MEASURE_PARAMETER,
         Param(
-            "test",
+            "compare",
             "str",
-            "nested: short `measure` inside the `long` one; adjacent: the latest window "
-            "against the window before it.",
-            default="nested",
-            choices=("nested", "adjacent"),
+            "within: the short `measure` against the longer `baseline` containing it; "
+            "previous: the latest window against the window before it.",
+            default="within",
+            choices=("within", "previous"),
         ),
-        Param("long", "str", "The long measure containing `measure` (nested test only)."),
+        Param("baseline", "str",
+              "The longer measure containing `measure` (compare = 'within' only)."),
         Param(
             "variance",
             "str",
@@ -144,8 +146,8 @@ class ShiftRule(Rule):
 
     targets: PairTargets
     measure: str
-    test: ShiftTest
-    long: str | None
+    compare: ShiftCompare
+    baseline: str | None
     window: int | None
     z_level: float
     clear_z: float
@@ -162,26 +164,27 @@ class ShiftRule(Rule):
         common = read_common(reader)
         targets = resolve_pairs(reader, universe)
         short = read_measure(reader, "measure", default_measure)
-        test = cast(ShiftTest, reader.read_str("test"))
-        long_text: str | None = None
-        if test == "nested":
-            if not reader.has("long"):
-                raise reader.error("long", "missing required key (test = 'nested' needs it)")
-            long = read_measure(reader, "long", None)
-            if long.family != short.family or not short.is_shorter_than(long):
+        compare = cast(ShiftCompare, reader.read_str("compare"))
+        baseline_text: str | None = None
+        if compare == "within":
+            if not reader.has("baseline"):
                 raise reader.error(
-                    "long",
-                    f"{long.text!r} must be a longer measure of the same kind as "
+                    "baseline", "missing required key (compare = 'within' needs it)")
+            base = read_measure(reader, "baseline", None)
+            if base.family != short.family or not short.is_shorter_than(base):
+                raise reader.error(
+                    "baseline",
+                    f"{base.text!r} must be a longer measure of the same kind as "
                     f"measure = {short.text!r}",
                 )
-            long_text = long.text
+            baseline_text = base.text
         else:
-            if reader.has("long"):
-                raise reader.error("long", "only used with test = 'nested'")
+            if reader.has("baseline"):
+                raise reader.error("baseline", "only used with compare = 'within'")
             if short.window is None:
                 raise reader.error(
                     "measure",
-                    f"{short.text!r}: test = 'adjacent' needs a window measure "
+                    f"{short.text!r}: compare = 'previous' needs a window measure "
                     "(rolling:<days> or rank:<days>)",
                 )
         variance = cast(Variance, reader.read_str("variance"))
@@ -206,9 +209,9 @@ class ShiftRule(Rule):
                 )
             z_level, false_alarms = raw_z, None
         else:
-            engine_long = None if long_text is None else parse_measure(long_text)
+            engine_baseline = None if baseline_text is None else parse_measure(baseline_text)
             z_level, _ = shift_threshold(
-                cast(float, false_alarms), parse_measure(short.text), engine_long
+                cast(float, false_alarms), parse_measure(short.text), engine_baseline
             )
         if fdr != "none":
             false_alarms = None
@@ -220,13 +223,13 @@ class ShiftRule(Rule):
         measure_text = short.text
         if variance == "robust":
             measure_text = scaled_text(measure_text)
-            long_text = None if long_text is None else scaled_text(long_text)
+            baseline_text = None if baseline_text is None else scaled_text(baseline_text)
         return cls(
             **common.fields(),
             targets=targets,
             measure=measure_text,
-            test=test,
-            long=long_text,
+            compare=compare,
+            baseline=baseline_text,
             window=short.window,
             z_level=z_level,
             clear_z=clear_z,
@@ -238,10 +241,10 @@ class ShiftRule(Rule):
         )
 
     def measures(self) -> list[str]:
-        return [self.measure] if self.long is None else [self.measure, self.long]
+        return [self.measure] if self.baseline is None else [self.measure, self.baseline]
 
     def lags(self) -> list[tuple[str, int]]:
-        if self.test == "adjacent" and self.window is not None:
+        if self.compare == "previous" and self.window is not None:
             return [(self.measure, self.window)]
         return []
 
@@ -266,15 +269,15 @@ class ShiftRule(Rule):
     def tail_factor(self, day: DayInputs) -> np.ndarray:
         """The pairs' tail factors phi (P_rule,) from today's standardised history: the
         larger of the long-run factor (252 rows) and the factor of each tested window that
-        is shorter than the history (the short window of a nested test; both windows of an
-        adjacent one), so that a window holding a stress day gets its own wider variance."""
+        is shorter than the history (the short window of a `within` comparison; both windows
+        of a `previous` one), so that a window holding a stress day gets its own wider variance."""
         if day.scaled_history is None:
             raise KeyError("DayInputs.scaled_history is missing (variance = 'robust')")
         history, pairs = day.scaled_history, self.targets.pairs
         phi = pair_tail_factor(history, pairs)
         window = self.window
         if window is not None:
-            skips = (0,) if self.long is not None else (0, window)
+            skips = (0,) if self.baseline is not None else (0, window)
             for skip in skips:
                 phi = np.fmax(phi, window_tail_factor(history, pairs, rows=window, skip=skip))
         return phi
@@ -282,13 +285,13 @@ class ShiftRule(Rule):
     def evaluate(self, day: DayInputs) -> Condition:
         pairs = self.targets.pairs
         today = day.measure(self.measure, pairs)
-        if self.long is not None:
-            other = day.measure(self.long, pairs)
+        if self.baseline is not None:
+            other = day.measure(self.baseline, pairs)
         else:
             other = day.lagged_measure(self.measure, self.window or 0, pairs)
         z = fisher_difference(
             today.value, today.n, other.value, other.n,
-            nested=self.long is not None, factor=self.factor,
+            nested=self.baseline is not None, factor=self.factor,
         )
         if self.variance == "robust":
             z /= np.sqrt(self.tail_factor(day))

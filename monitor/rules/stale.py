@@ -1,8 +1,8 @@
 """The ``stale`` rule: an instrument's closes stopped arriving or stopped changing.
 
-Opens when an instrument has had no new close for ``days`` business days, or (with
+Opens when an instrument has had no new close for ``after_days`` business days, or (with
 ``unchanged = true``, the default) its close has not changed for that long; clears as soon
-as both counts are below ``days`` again. The pipeline supplies both counts per instrument
+as both counts are below ``after_days`` again. The pipeline supplies both counts per instrument
 (:class:`~monitor.rules.inputs.DayInputs`); the target label is the symbol.
 """
 
@@ -27,20 +27,20 @@ SYMBOL_TARGET_PARAMETERS: tuple[Param, ...] = (
 
 @dataclass(frozen=True, eq=False, kw_only=True)
 class StaleRule(Rule):
-    """No fresh (or no changed) close for ``days`` business days."""
+    """No fresh (or no changed) close for ``after_days`` business days."""
 
     kind: ClassVar[str] = "stale"
     summary: ClassVar[str] = "An instrument has no new or no changed close for some days."
     target_parameters: ClassVar[tuple[Param, ...]] = SYMBOL_TARGET_PARAMETERS
     own_parameters: ClassVar[tuple[Param, ...]] = (
-        Param("days", "int", "Business days without a fresh close that open.", default=3,
+        Param("after_days", "int", "Business days without a fresh close that open.", default=3,
               minimum=1),
-        Param("unchanged", "bool", "Also open when the close has not changed for `days`.",
+        Param("unchanged", "bool", "Also open when the close has not changed for `after_days`.",
               default=True),
     )
 
     targets: SymbolTargets
-    days: int
+    after_days: int
     unchanged: bool
 
     @classmethod
@@ -51,7 +51,7 @@ class StaleRule(Rule):
         return cls(
             **common.fields(),
             targets=resolve_symbols(reader, universe),
-            days=reader.read_int("days"),
+            after_days=reader.read_int("after_days"),
             unchanged=reader.read_bool("unchanged"),
         )
 
@@ -67,10 +67,10 @@ class StaleRule(Rule):
         else:
             known = np.isfinite(days)
         return Condition.build(
-            breach=(days >= self.days) & known,
-            clear=(days < self.days) & known,
+            breach=(days >= self.after_days) & known,
+            clear=(days < self.after_days) & known,
             known=known,
             value=days,
-            level=float(self.days),
-            excess=days - self.days,
+            level=float(self.after_days),
+            excess=days - self.after_days,
         )

@@ -78,7 +78,7 @@ class Targets:
     ----------
     labels : sequence of str
         ``"A/B"`` for pairs (a lazy :class:`PairLabels`), the symbol for instruments, the
-        group name for baskets.
+        group name for group averages.
     """
 
     labels: Sequence[str]
@@ -316,7 +316,7 @@ def resolve_pairs(reader: TableReader, universe: Universe) -> PairTargets:
 
 
 def resolve_groups(reader: TableReader, universe: Universe) -> GroupTargets:
-    """Resolve a basket rule's ``group`` (one or several) or ``all`` into group targets.
+    """Resolve a group-average rule's ``group`` (one or several) or ``all`` into group targets.
 
     Raises
     ------

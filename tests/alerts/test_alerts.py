@@ -241,9 +241,10 @@ def _replay_world(days: int, seed: int) -> tuple[list[Rule], list[DayInputs], np
         [
             {"name": "hedge-break", "kind": "level", "measure": "rolling:63", "above": 0.5,
              "hold": 2, "remind_every": 4, "all": True},
-            {"name": "swing", "kind": "jump", "measure": "rolling:63", "delta": 0.25, "days": 3,
+            {"name": "swing", "kind": "jump", "measure": "rolling:63", "delta": 0.25,
+             "over_days": 3,
              "remind_every": 2, "group": "equities"},
-            {"name": "break-up", "kind": "shift", "measure": "rolling:21", "long": "rolling:63",
+            {"name": "break-up", "kind": "shift", "measure": "rolling:21", "baseline": "rolling:63",
              "z": 2.0, "variance": "fisher", "all": True},
         ],
         symbols=SYMBOLS,

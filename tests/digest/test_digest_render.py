@@ -23,11 +23,11 @@ from monitor.digest import png_charts
 from monitor.digest.context import (
     AlertHistory,
     AlertView,
-    BasketView,
     DataIssueView,
     DigestContext,
     DigestParameters,
     DriverView,
+    GroupAverageView,
     HeatmapView,
     Instrument,
     MoverView,
@@ -153,9 +153,10 @@ def _context(**overrides: object) -> DigestContext:
             MoverView(ORMA, TEZ10, "ewma:hl=21", 0.71, 0.52),
             MoverView(XSS, KLV, "ewma:hl=21", 0.3, math.nan),
         ],
-        "baskets": [
-            BasketView("Kelvara core", 0.44, 0.31, 3, 3, _days(63), np.linspace(0.31, 0.44, 63)),
-            BasketView("Orma single", math.nan, math.nan, 0, 1),
+        "group_averages": [
+            GroupAverageView("Kelvara core", 0.44, 0.31, 3, 3, _days(63),
+                             np.linspace(0.31, 0.44, 63)),
+            GroupAverageView("Orma single", math.nan, math.nan, 0, 1),
         ],
         "data_quality": [
             DataIssueView(
@@ -347,7 +348,7 @@ def test_movers_are_ordered_by_size_of_change_with_unknown_last(soup: BeautifulS
 
 
 def test_group_averages_show_now_before_change_and_pairs(soup: BeautifulSoup) -> None:
-    rows = soup.select("#group-averages tr.basket")
+    rows = soup.select("#group-averages tr.group-average")
     cells = [td.get_text(strip=True) for td in rows[0].find_all("td")[:5]]
     assert cells == ["Kelvara core", "0.44", "0.31", "+0.13", "3 of 3"]
     single = [td.get_text(strip=True) for td in rows[1].find_all("td")]
@@ -484,7 +485,9 @@ def test_text_part_carries_the_same_alert_facts(rendered: RenderedDigest) -> Non
     assert "0.70 %      \u22121.40 %" in text
 
 
-def test_text_part_carries_movers_baskets_matrix_and_data_issues(rendered: RenderedDigest) -> None:
+def test_text_part_carries_movers_group_averages_matrix_and_data_issues(
+    rendered: RenderedDigest,
+) -> None:
     text = rendered.text
     assert re.search(r"KLV / ZRL +ewma:hl=21 +now +0\.12 +before +0\.48 +change +\u22120\.36", text)
     assert re.search(
@@ -715,8 +718,8 @@ def test_heatmap_needs_two_instruments_and_draws_two() -> None:
     assert png_charts.png_size(image.png) == (2 * image.width, 2 * image.height)
 
 
-def test_basket_chart_handles_all_nan_history() -> None:
-    image = png_charts.basket_history_chart(_days(5), [math.nan] * 5)
+def test_group_average_chart_handles_all_nan_history() -> None:
+    image = png_charts.group_average_chart(_days(5), [math.nan] * 5)
     assert png_charts.png_size(image.png) == (640, 240)
 
 

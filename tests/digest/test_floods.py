@@ -316,7 +316,7 @@ def test_the_email_does_not_grow_with_the_flood() -> None:
 
 
 SHIFT_TABLE = {"name": "regime-shift", "kind": "shift", "measure": "rolling:21",
-               "long": "rolling:126", "pairs": ["RT00/RT01"]}
+               "baseline": "rolling:126", "pairs": ["RT00/RT01"], "severity": "critical"}
 LEVEL_TABLE = {"name": "hedge-level", "kind": "level", "measure": "rolling:21",
                "pairs": ["RT00/UT00"], "below": 0.3, "clear": 0.45}
 
@@ -354,7 +354,7 @@ def test_method_notes_reach_the_digest_for_a_shift_alert_and_not_a_level_alert(
         returns=returns, names={}, groups=GROUPS,
         rules={r.name: r for r in real_rules}, alerts=facts,
         monitored_pairs=np.array([[0, 1], [0, SYMBOLS.index("UT00")]]), measures=["rolling:21"],
-        return_kind="log", horizon=1, level=0.95, movers_days=5, gauge_days=21,
+        return_kind="log", horizon=1, level=0.95, largest_changes_days=5, group_average_days=21,
         history_days=60,
     )
     ctx = build_context(inputs)
@@ -428,6 +428,15 @@ def test_method_notes_reach_the_rule_page_and_the_pair_page(real_rules: list[Any
     note = shift_page.select_one("#rule-method")
     assert note is not None and shift.method_note() in note.get_text(" ", strip=True)
     assert page(rule_page_path("hedge-level")).select_one("#rule-method") is None
+    # Measure and Severity are listed once (not again among the table's own keys), and the
+    # two measures are joined with "vs" since a comma separates a measure's options.
+    settings = [(row.th.get_text(strip=True), row.td.get_text(" ", strip=True))
+                for row in shift_page.select("#rule-settings tr")]
+    names = [name for name, _ in settings]
+    assert names.count("Measure") == 1 and names.count("Severity") == 1
+    assert "measure" not in names and "severity" not in names
+    assert dict(settings)["Measure"] == f"{shift.measure} vs {shift.baseline}"
+    assert dict(settings)["baseline"] == "rolling:126"
     pair = page(pair_page_path("RT00", "RT01"))
     notes = [dd.get_text(" ", strip=True) for dd in pair.select("dl.method-notes dd")]
     assert notes == [shift.method_note()]

@@ -194,7 +194,7 @@ def test_robust_band_covers_far_better_than_fisher_on_fat_tails(
     """2,000 windows of 63 days, true rho 0.5, 95 % bands (simulation; numpy's corrcoef as
     the reference estimator). On bivariate Student t(4) returns (common mixing, fourth
     moment infinite) Fisher's band covers about 81 % of the time; widened by the tail factor
-    of the standardised returns (monitor.rules.stats.widened_band, as sign and confident
+    of the standardised returns (monitor.rules.stats.widened_band, as sign and require_band
     level rules use it) about 91 %: much nearer, still short of 95 % because a capped
     kurtosis cannot see an infinite one (stated in README Methods). On normal returns the
     robust band stays at 95 %."""

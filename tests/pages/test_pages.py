@@ -106,12 +106,12 @@ def made_up_context(
         AlertSummary(102, "cleared", "warning", "hedge level", "level", "pair", ("KLV", "DUNQ"),
                      opened=d[-60], cleared=d[-40], peak=0.38, acknowledged_by="r.okafor",
                      measure="rolling:63"),
-        AlertSummary(103, "withdrawn", "info", HOSTILE_RULE, "shift", "pair", ("KLV", HOSTILE),
+        AlertSummary(103, "retracted", "info", HOSTILE_RULE, "shift", "pair", ("KLV", HOSTILE),
                      opened=d[-30], peak=math.nan, measure="ewma:hl=21"),
         AlertSummary(104, "cleared", "warning", "regime shift", "shift", "pair",
                      (NON_ASCII, SLASHY), opened=d[-90], cleared=d[-70], peak=-0.35,
                      acknowledged_by=HOSTILE, measure="rolling:63"),
-        AlertSummary(105, "open", "warning", "group average", "basket", "group",
+        AlertSummary(105, "open", "warning", "group average", "group-average", "group",
                      ("Utilities & Power",), opened=d[-5], peak=0.91),
         AlertSummary(106, "open", "info", "stale closes", "stale", "instrument", (SLASHY,),
                      opened=d[-3]),
@@ -178,7 +178,7 @@ def made_up_context(
                      "The KLV hedge should stay correlated."),
             RulePage(HOSTILE_RULE, "shift", "info", "ewma:hl=21", [("p_value", "0.01")]),
             RulePage("regime shift", "shift", "warning", "rolling:63"),
-            RulePage("group average", "basket", "warning", "rolling:63"),
+            RulePage("group average", "group-average", "warning", "rolling:63"),
             RulePage("stale closes", "stale", "info", "", [("days", "3")]),
         ],
         runs=[
@@ -312,6 +312,9 @@ def test_filter_form_is_hidden_until_the_script_runs_and_offers_every_rule_and_g
     assert rules == sorted({a.rule_name for a in ctx.alerts})
     groups = [_attr(o, "value") for o in form.select("#filter-group option")][1:]
     assert set(groups) == set(GROUPS.values())
+    states = {_attr(o, "value"): o.get_text() for o in form.select("#filter-state option")}
+    assert states == {"": "any", "open": "open", "cleared": "cleared",
+                      "retracted": "retracted (a rerun no longer produces it)"}
 
 
 def test_instruments_without_a_group_add_no_empty_group_choice() -> None:

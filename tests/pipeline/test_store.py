@@ -60,3 +60,31 @@ def test_unreachable_database_is_a_one_line_error() -> None:
 def test_a_url_that_is_not_a_url_is_refused() -> None:
     with pytest.raises(StoreError, match="is not a SQLAlchemy URL"):
         open_store("not a url at all")
+
+
+def test_words_older_versions_stored_are_read_as_the_new_words(store_url: str) -> None:
+    """An alert a rerun retracted was stored as 'withdrawn' and a group-average rule's kind
+    as 'basket' before the rename; both read as today's words, and the day's listing
+    leaves the retracted alert out whichever word it was stored under."""
+    import datetime as dt
+
+    from storage import alerts as alerts_store
+    from storage.schema import alerts
+
+    day = dt.date(2026, 3, 2)
+    store = open_store(store_url, create=True)
+    try:
+        with store.begin() as conn:
+            for rule, state, kind in (("old", "withdrawn", "basket"), ("new", "retracted", "level"),
+                                      ("live", "open", "group-average")):
+                conn.execute(alerts.insert().values(
+                    rule=rule, target="core", opened_on=day, first_breach_on=day,
+                    rule_kind=kind, severity="info", measure="rolling:63", state=state))
+        with store.connect() as conn:
+            rows = {r.rule: r for r in alerts_store.list_alerts(conn)}
+            shown = [r.rule for r in alerts_store.list_alerts(conn, open_on=day)]
+    finally:
+        store.dispose()
+    assert (rows["old"].state, rows["old"].rule_kind) == ("retracted", "group-average")
+    assert (rows["new"].state, rows["live"].rule_kind) == ("retracted", "group-average")
+    assert shown == ["live"]

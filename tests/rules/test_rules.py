@@ -204,8 +204,69 @@ def test_missing_kind_lists_the_known_kinds() -> None:
     message = error_of({"name": "t"})
     assert message == (
         "rules[0] (t).kind: missing required key "
-        "(one of basket, cusum, jump, level, shift, sign, stale)"
+        "(one of cusum, group-average, jump, level, shift, sign, stale)"
     )
+
+
+@pytest.mark.parametrize(
+    ("table", "expected"),
+    [
+        ({"kind": "basket", "above": 0.6, "group": "equities"},
+         "rules[2] (t).kind: did you mean 'group-average'? 'basket' is its old name"),
+        ({"kind": "shift", "measure": "rolling:21", "long": "rolling:126", "all": True},
+         "rules[2] (t).long: did you mean 'baseline'? 'long' is its old name"),
+        ({"kind": "shift", "measure": "rolling:63", "test": "adjacent", "all": True},
+         "rules[2] (t).test: did you mean 'compare'? 'test' is its old name"),
+        ({"kind": "shift", "measure": "rolling:63", "compare": "adjacent", "all": True},
+         "rules[2] (t).compare: did you mean 'previous'? 'adjacent' is its old name"),
+        ({"kind": "shift", "measure": "rolling:21", "baseline": "rolling:126",
+          "compare": "nested", "all": True},
+         "rules[2] (t).compare: did you mean 'within'? 'nested' is its old name"),
+        ({"kind": "jump", "delta": 0.3, "days": 5, "all": True},
+         "rules[2] (t).days: did you mean 'over_days'? 'days' is its old name"),
+        ({"kind": "stale", "days": 3, "all": True},
+         "rules[2] (t).days: did you mean 'after_days'? 'days' is its old name"),
+        ({"kind": "level", "above": 0.7, "confident": True, "all": True},
+         "rules[2] (t).confident: did you mean 'require_band'? 'confident' is its old name"),
+    ],
+)
+def test_an_old_name_is_refused_with_its_new_name(table: dict[str, object], expected: str
+                                                 ) -> None:
+    """A settings file written with a name comove used before gets the new word, never a
+    silent reading nor a bare 'unknown key'."""
+    quiet = {"name": "q", "kind": "level", "above": 0.7, "measure": "rolling:63", "all": True}
+    with pytest.raises(ConfigError) as caught:
+        build_rules([quiet, {**quiet, "name": "r"}, {"name": "t", **table}],
+                    symbols=SYMBOLS, groups=GROUPS)
+    assert str(caught.value) == expected
+
+
+def test_the_new_names_are_read() -> None:
+    within, previous, jump, stale, level = build_rules([
+        {"name": "a", "kind": "shift", "measure": "rolling:21", "baseline": "rolling:126",
+         "compare": "within", "variance": "fisher", "all": True},
+        {"name": "b", "kind": "shift", "measure": "rolling:63", "compare": "previous",
+         "variance": "fisher", "all": True},
+        {"name": "c", "kind": "jump", "delta": 0.3, "over_days": 7, "measure": "rolling:63",
+         "all": True},
+        {"name": "d", "kind": "stale", "after_days": 4, "all": True},
+        {"name": "e", "kind": "level", "above": 0.7, "require_band": True,
+         "measure": "rolling:63", "all": True},
+    ], symbols=SYMBOLS, groups=GROUPS)
+    assert within.lags() == [] and within.measures() == ["rolling:21", "rolling:126"]
+    assert previous.lags() == [("rolling:63", 63)]
+    assert jump.lags() == [("rolling:63", 7)]
+    assert stale.after_days == 4
+    assert level.require_band and level.method_note() is not None
+
+
+def test_two_measures_are_joined_with_vs_not_a_comma() -> None:
+    """A comma separates a measure's own options (rolling:21,min=17), so it cannot also
+    separate two measures."""
+    rule = one(kind="shift", measure="rolling:21,min=17", baseline="rolling:126,min=100",
+               variance="fisher", pairs=["KLV/ORMA"])
+    assert rule.measure_label() == "rolling:21,min=17 vs rolling:126,min=100"
+    assert one(kind="level", above=0.7, pairs=["KLV/ORMA"]).measure_label() == "rolling:63"
 
 
 def test_unknown_key_suggests_the_nearest() -> None:
@@ -305,7 +366,8 @@ def test_bad_default_measure_is_reported_on_the_rule_using_it() -> None:
         ("hold", 0, "rules[0] (t).hold: 0 is below the minimum 1"),
         ("above", "high", "rules[0] (t).above: expected a number, got 'high' (str)"),
         ("above", 1.5, "rules[0] (t).above: 1.5 is above the maximum 1"),
-        ("confident", "yes", "rules[0] (t).confident: expected true or false, got 'yes' (str)"),
+        ("require_band", "yes",
+         "rules[0] (t).require_band: expected true or false, got 'yes' (str)"),
         ("pairs", "KLV/ORMA",
          "rules[0] (t).pairs: expected a list of strings, got 'KLV/ORMA' (str)"),
         ("severity", "warn",
@@ -353,23 +415,23 @@ def test_rules_entry_that_is_not_a_table_is_refused() -> None:
         ({"kind": "sign", "expected": "up", "all": True},
          "rules[0] (t).expected: 'up' is not one of positive, negative"),
         ({"kind": "shift", "all": True},
-         "rules[0] (t).long: missing required key (test = 'nested' needs it)"),
-        ({"kind": "shift", "long": "rolling:21", "all": True},
-         "rules[0] (t).long: 'rolling:21' must be a longer measure of the same kind as "
+         "rules[0] (t).baseline: missing required key (compare = 'within' needs it)"),
+        ({"kind": "shift", "baseline": "rolling:21", "all": True},
+         "rules[0] (t).baseline: 'rolling:21' must be a longer measure of the same kind as "
          "measure = 'rolling:63'"),
-        ({"kind": "shift", "long": "ewma:hl=126", "all": True},
-         "rules[0] (t).long: 'ewma:hl=126' must be a longer measure of the same kind as "
+        ({"kind": "shift", "baseline": "ewma:hl=126", "all": True},
+         "rules[0] (t).baseline: 'ewma:hl=126' must be a longer measure of the same kind as "
          "measure = 'rolling:63'"),
-        ({"kind": "shift", "test": "adjacent", "long": "rolling:126", "all": True},
-         "rules[0] (t).long: only used with test = 'nested'"),
-        ({"kind": "shift", "test": "adjacent", "measure": "ewma:hl=21", "all": True},
-         "rules[0] (t).measure: 'ewma:hl=21': test = 'adjacent' needs a window measure "
+        ({"kind": "shift", "compare": "previous", "baseline": "rolling:126", "all": True},
+         "rules[0] (t).baseline: only used with compare = 'within'"),
+        ({"kind": "shift", "compare": "previous", "measure": "ewma:hl=21", "all": True},
+         "rules[0] (t).measure: 'ewma:hl=21': compare = 'previous' needs a window measure "
          "(rolling:<days> or rank:<days>)"),
-        ({"kind": "shift", "long": "rolling:126", "z": 3.0, "clear_z": 3.5, "all": True},
+        ({"kind": "shift", "baseline": "rolling:126", "z": 3.0, "clear_z": 3.5, "all": True},
          "rules[0] (t).clear_z: 3.5 must be below z = 3.0"),
-        ({"kind": "basket", "above": 0.6},
+        ({"kind": "group-average", "above": 0.6},
          "rules[0] (t).group: no targets: set group or all = true"),
-        ({"kind": "basket", "above": 0.6, "group": "credit"},
+        ({"kind": "group-average", "above": 0.6, "group": "credit"},
          "rules[0] (t).group: group 'credit' has fewer than two instruments"),
         ({"kind": "stale", "symbols": ["KLV", "ORMX"]},
          "rules[0] (t).symbols: unknown symbol 'ORMX' (did you mean 'ORMA'?)"),
@@ -388,7 +450,7 @@ def test_each_kind_reports_its_own_bad_settings(table: dict[str, object], expect
 def test_every_kind_documents_each_parameter() -> None:
     documented = rule_parameters()
     assert set(documented) == set(RULE_KINDS) == {
-        "level", "shift", "jump", "sign", "basket", "stale", "cusum"
+        "level", "shift", "jump", "sign", "group-average", "stale", "cusum"
     }
     for kind, params in documented.items():
         names = [param.name for param in params]
@@ -401,7 +463,7 @@ def test_every_kind_documents_each_parameter() -> None:
 
 def test_documented_defaults_are_the_defaults_applied() -> None:
     (rule,) = build({"name": "t", "kind": "shift", "measure": "rolling:21",
-                     "long": "rolling:126", "all": True})
+                     "baseline": "rolling:126", "all": True})
     defaults = {param.name: param.default for param in rule_parameters()["shift"]}
     assert rule.severity == defaults["severity"] == "warning"
     assert rule.remind_every == defaults["remind_every"]
@@ -423,11 +485,12 @@ def test_rules_declare_measures_lags_and_pairs_they_read() -> None:
     rules = build(
         {"name": "a", "kind": "level", "measure": "rolling:63", "above": 0.7,
          "pairs": ["KLV/ORMA"]},
-        {"name": "b", "kind": "shift", "measure": "rolling:21", "test": "adjacent",
+        {"name": "b", "kind": "shift", "measure": "rolling:21", "compare": "previous",
          "variance": "fisher", "group": "rates"},
-        {"name": "c", "kind": "jump", "measure": "rolling:63", "delta": 0.3, "days": 5,
+        {"name": "c", "kind": "jump", "measure": "rolling:63", "delta": 0.3, "over_days": 5,
          "pairs": ["KLV/ORMA"]},
-        {"name": "d", "kind": "basket", "measure": "ewma:hl=21", "above": 0.6, "group": "equities"},
+        {"name": "d", "kind": "group-average", "measure": "ewma:hl=21", "above": 0.6,
+         "group": "equities"},
         {"name": "e", "kind": "stale", "all": True},
     )
     assert measures_needed(rules) == ["rolling:63", "rolling:21", "ewma:hl=21"]
@@ -475,7 +538,7 @@ class BandlessMeasure:
 
 def test_rules_read_the_band_only_when_they_need_it() -> None:
     plain = one(kind="level", above=0.7, pairs=["KLV/ORMA", "KLV/VESK"])
-    confident = one(kind="level", above=0.7, confident=True, variance="fisher",
+    confident = one(kind="level", above=0.7, require_band=True, variance="fisher",
                     pairs=["KLV/ORMA", "KLV/VESK"])
     quiet = {"rolling:63": BandlessMeasure([0.2, 0.3])}
     book = AlertBook()
@@ -527,7 +590,7 @@ def test_level_below_mirrors_above() -> None:
 
 
 def test_confident_level_opens_only_when_the_band_is_beyond_the_level() -> None:
-    rule = one(kind="level", above=0.7, confident=True, variance="fisher", pairs=["KLV/ORMA"])
+    rule = one(kind="level", above=0.7, require_band=True, variance="fisher", pairs=["KLV/ORMA"])
     values = [0.80, 0.80, 0.80]
     lows = [0.65, 0.69, 0.72]
     days = [
@@ -540,7 +603,7 @@ def test_confident_level_opens_only_when_the_band_is_beyond_the_level() -> None:
 
 
 def test_confident_below_uses_the_band_high() -> None:
-    rule = one(kind="level", below=-0.5, confident=True, variance="fisher", pairs=["KLV/ORMA"])
+    rule = one(kind="level", below=-0.5, require_band=True, variance="fisher", pairs=["KLV/ORMA"])
     inside = rule.evaluate(day_for(rule, {"rolling:63": measure_day([-0.7], high=[-0.45])}))
     beyond = rule.evaluate(day_for(rule, {"rolling:63": measure_day([-0.7], high=[-0.55])}))
     assert not inside.breach[0] and beyond.breach[0]
@@ -581,7 +644,7 @@ def test_fisher_difference_is_nan_without_enough_observations() -> None:
 
 
 def test_nested_shift_rule_opens_on_large_z_and_reports_p() -> None:
-    rule = one(kind="shift", measure="rolling:21", long="rolling:126", variance="fisher",
+    rule = one(kind="shift", measure="rolling:21", baseline="rolling:126", variance="fisher",
                z=3.0, pairs=["KLV/ORMA", "KLV/VESK"])
     day = day_for(rule, {
         "rolling:21": measure_day([0.9, 0.35], n=21.0),
@@ -596,7 +659,7 @@ def test_nested_shift_rule_opens_on_large_z_and_reports_p() -> None:
 
 
 def test_adjacent_shift_compares_with_the_window_before() -> None:
-    rule = one(kind="shift", measure="rolling:21", test="adjacent", z=2.0, variance="fisher",
+    rule = one(kind="shift", measure="rolling:21", compare="previous", z=2.0, variance="fisher",
                pairs=["KLV/ORMA"])
     assert rule.lags() == [("rolling:21", 21)]
     day = day_for(rule, {"rolling:21": measure_day([0.8], n=21.0)},
@@ -610,9 +673,9 @@ def test_adjacent_shift_compares_with_the_window_before() -> None:
 
 def test_rank_shift_widens_the_variance_by_the_spearman_factor() -> None:
     """Fieller, Hartley & Pearson (1957): var(atanh r_s) ~ 1.06/(n - 3) (typed from memory)."""
-    rank = one(kind="shift", measure="rank:21", test="adjacent", variance="fisher",
+    rank = one(kind="shift", measure="rank:21", compare="previous", variance="fisher",
                pairs=["KLV/ORMA"])
-    pearson = one(kind="shift", measure="rolling:21", test="adjacent", variance="fisher",
+    pearson = one(kind="shift", measure="rolling:21", compare="previous", variance="fisher",
                   pairs=["KLV/ORMA"])
     now, before = measure_day([0.8], n=21.0), measure_day([0.1], n=21.0)
     z_rank = rank.evaluate(day_for(rank, {"rank:21": now}, lagged={("rank:21", 21): before})).z
@@ -623,13 +686,13 @@ def test_rank_shift_widens_the_variance_by_the_spearman_factor() -> None:
 
 
 def test_adjacent_shift_without_the_lagged_window_is_a_wiring_error() -> None:
-    rule = one(kind="shift", measure="rolling:21", test="adjacent", pairs=["KLV/ORMA"])
+    rule = one(kind="shift", measure="rolling:21", compare="previous", pairs=["KLV/ORMA"])
     with pytest.raises(KeyError, match="rolling:21"):
         rule.evaluate(day_for(rule, {"rolling:21": measure_day([0.8], n=21.0)}))
 
 
 def test_shift_alert_opens_after_hold_days_and_clears_below_clear_z() -> None:
-    rule = one(kind="shift", measure="rolling:21", long="rolling:126", hold=2, z=3.0,
+    rule = one(kind="shift", measure="rolling:21", baseline="rolling:126", hold=2, z=3.0,
                variance="fisher", pairs=["KLV/ORMA"])
     shorts = [0.3, 0.9, 0.9, 0.7, 0.35]  # z: ~0, >3, >3, between 2 and 3, < 2
     days = [
@@ -660,7 +723,7 @@ def test_shift_alert_opens_after_hold_days_and_clears_below_clear_z() -> None:
 def test_jump_direction_breach_and_half_delta_clear(
     direction: str, breach: list[bool], clear: list[bool]
 ) -> None:
-    rule = one(kind="jump", delta=0.3, days=5, direction=direction,
+    rule = one(kind="jump", delta=0.3, over_days=5, direction=direction,
                pairs=["KLV/ORMA", "KLV/VESK", "ORMA/VESK", "TEZ10/LUMA5"])
     # Moves: +0.3 (exactly delta), -0.4, +0.2 (between delta/2 and delta), +0.1.
     today = measure_day([0.6, 0.0, 0.5, 0.2])
@@ -673,7 +736,7 @@ def test_jump_direction_breach_and_half_delta_clear(
 
 
 def test_jump_opens_on_the_move_and_clears_when_the_move_fades() -> None:
-    rule = one(kind="jump", delta=0.3, days=2, pairs=["KLV/ORMA"])
+    rule = one(kind="jump", delta=0.3, over_days=2, pairs=["KLV/ORMA"])
     series = [0.2, 0.2, 0.25, 0.55, 0.6, 0.62, 0.64]
     days = []
     for k, value in enumerate(series):
@@ -707,11 +770,11 @@ def test_sign_expected_negative_mirrors_positive() -> None:
     np.testing.assert_array_equal(condition.clear, [False, True])
 
 
-# --- basket ----------------------------------------------------------------------------
+# --- group-average ----------------------------------------------------------------------------
 
 
-def test_basket_averages_the_pairs_inside_each_group() -> None:
-    rule = one(kind="basket", above=0.6, group=["equities", "rates"])
+def test_group_average_averages_the_pairs_inside_each_group() -> None:
+    rule = one(kind="group-average", above=0.6, group=["equities", "rates"])
     assert rule.targets.labels == ("equities", "rates")
     pairs = rule.pairs_needed()
     # Pairs: KLV/ORMA, KLV/VESK, ORMA/VESK (equities), then TEZ10/LUMA5 (rates).
@@ -722,24 +785,24 @@ def test_basket_averages_the_pairs_inside_each_group() -> None:
     np.testing.assert_array_equal(condition.breach, [True, False])
 
 
-def test_basket_average_needs_the_minimum_coverage() -> None:
-    rule = one(kind="basket", above=0.6, group="equities", min_coverage=0.5)
+def test_group_average_average_needs_the_minimum_coverage() -> None:
+    rule = one(kind="group-average", above=0.6, group="equities", min_coverage=0.5)
     enough = rule.evaluate(day_for(rule, {"rolling:63": measure_day([0.8, np.nan, 0.9])}))
     thin = rule.evaluate(day_for(rule, {"rolling:63": measure_day([0.8, np.nan, np.nan])}))
     assert float(enough.value[0]) == pytest.approx(0.85)
     assert np.isnan(thin.value[0]) and not thin.known[0]
 
 
-def test_basket_alert_opens_and_clears_with_the_dead_band() -> None:
-    rule = one(kind="basket", above=0.6, clear=0.5, hold=2, group="equities")
+def test_group_average_alert_opens_and_clears_with_the_dead_band() -> None:
+    rule = one(kind="group-average", above=0.6, clear=0.5, hold=2, group="equities")
     averages = [0.4, 0.65, 0.7, 0.55, 0.62, 0.45]
     days = [day_for(rule, {"rolling:63": measure_day([a, a, a])}, offset=k)
             for k, a in enumerate(averages)]
     assert summary(run(rule, days)) == [("opened", "equities", 2), ("cleared", "equities", 5)]
 
 
-def test_all_baskets_means_every_group_of_two_or_more() -> None:
-    rule = one(kind="basket", above=0.6, all=True)
+def test_all_group_averages_means_every_group_of_two_or_more() -> None:
+    rule = one(kind="group-average", above=0.6, all=True)
     assert rule.targets.labels == ("equities", "rates")
 
 
@@ -747,21 +810,22 @@ def test_all_baskets_means_every_group_of_two_or_more() -> None:
 
 
 def test_stale_counts_missing_and_unchanged_closes() -> None:
-    rule = build({"name": "t", "kind": "stale", "days": 3, "symbols": ["KLV", "ORMA", "VESK"]})[0]
+    rule = build({"name": "t", "kind": "stale", "after_days": 3,
+                  "symbols": ["KLV", "ORMA", "VESK"]})[0]
     missing = np.array([0, 4, 0, 0, 0, 0], dtype=np.float64)
     flat = np.array([3, 0, np.nan, 0, 0, 0], dtype=np.float64)
     condition = rule.evaluate(DayInputs(date=START, measures={}, days_without_close=missing,
                                         days_unchanged=flat))
     np.testing.assert_array_equal(condition.breach, [True, True, False])
     np.testing.assert_array_equal(condition.known, [True, True, False])
-    ignore_flat = build({"name": "t", "kind": "stale", "days": 3, "unchanged": False,
+    ignore_flat = build({"name": "t", "kind": "stale", "after_days": 3, "unchanged": False,
                          "symbols": ["KLV", "ORMA", "VESK"]})[0]
     condition = ignore_flat.evaluate(DayInputs(date=START, measures={}, days_without_close=missing))
     np.testing.assert_array_equal(condition.breach, [False, True, False])
 
 
 def test_stale_alert_opens_at_days_and_clears_on_a_fresh_close() -> None:
-    rule = build({"name": "t", "kind": "stale", "days": 3, "group": "rates"})[0]
+    rule = build({"name": "t", "kind": "stale", "after_days": 3, "group": "rates"})[0]
     assert rule.targets.labels == ("TEZ10", "LUMA5")
     counts = [0, 1, 2, 3, 4, 0]
     days = []
@@ -837,8 +901,8 @@ def _openings(returns: np.ndarray, table: dict[str, object]) -> tuple[Rule, list
 
 
 @pytest.mark.parametrize("table", [
-    {"measure": "rolling:21", "long": "rolling:126"},
-    {"measure": "rolling:63", "test": "adjacent"},
+    {"measure": "rolling:21", "baseline": "rolling:126"},
+    {"measure": "rolling:63", "compare": "previous"},
 ])
 def test_constant_fat_tailed_panel_raises_few_shift_alerts_at_the_defaults(
     table: dict[str, object]
@@ -856,7 +920,7 @@ def test_constant_fat_tailed_panel_raises_few_shift_alerts_at_the_defaults(
 
 def test_planted_break_is_found_by_the_default_nested_shift() -> None:
     returns = _fat_tailed_panel(6, 3, seed=32, break_row=500, new_rho=0.9)
-    _, opened = _openings(returns, {"measure": "rolling:21", "long": "rolling:126"})
+    _, opened = _openings(returns, {"measure": "rolling:21", "baseline": "rolling:126"})
     hits = [e for e in opened if e.target == "S00/S01"]
     assert hits, "the break from 0.36 to 0.9 is not found"
     first = (hits[0].date - START).days
@@ -865,9 +929,9 @@ def test_planted_break_is_found_by_the_default_nested_shift() -> None:
 
 
 def test_robust_shift_reads_standardised_measures_and_divides_z_by_the_tail_factor() -> None:
-    robust = one(kind="shift", measure="rolling:21", long="rolling:126", z=3.0,
+    robust = one(kind="shift", measure="rolling:21", baseline="rolling:126", z=3.0,
                  pairs=["KLV/ORMA"])
-    fisher = one(kind="shift", measure="rolling:21", long="rolling:126", z=3.0,
+    fisher = one(kind="shift", measure="rolling:21", baseline="rolling:126", z=3.0,
                  variance="fisher", pairs=["KLV/ORMA"])
     assert robust.measures() == ["rolling:21,scale=vol", "rolling:126,scale=vol"]
     assert robust.history_rows() == 252 and fisher.history_rows() == 0
@@ -888,24 +952,24 @@ def test_robust_shift_reads_standardised_measures_and_divides_z_by_the_tail_fact
 
 
 def test_method_notes_say_which_variance_and_setting_stand_behind_alerts() -> None:
-    calibrated = one(kind="shift", measure="rolling:21", long="rolling:126", all=True)
+    calibrated = one(kind="shift", measure="rolling:21", baseline="rolling:126", all=True)
     assert calibrated.method_note() == (
         "robust variance (returns standardised by EWMA volatility, Fisher variance times the "
         "tail factor); threshold |z| > 4.29 for 0.01 false alerts per pair per year.")
-    raw = one(kind="shift", measure="rolling:63", test="adjacent", variance="fisher", z=3.5,
+    raw = one(kind="shift", measure="rolling:63", compare="previous", variance="fisher", z=3.5,
               all=True)
     assert raw.method_note() == ("Fisher variance 1/(n - 3) (assumes independent normal "
                                  "returns); raw threshold |z| > 3.5 (no false-alarm rate stated).")
-    rarer = one(kind="shift", measure="rolling:21", long="rolling:126", false_alarms=0.001,
+    rarer = one(kind="shift", measure="rolling:21", baseline="rolling:126", false_alarms=0.001,
                 all=True)
     assert rarer.z_level > calibrated.z_level  # type: ignore[attr-defined]
-    by = one(kind="shift", measure="rolling:21", long="rolling:126", fdr="by", fdr_level=0.1,
+    by = one(kind="shift", measure="rolling:21", baseline="rolling:126", fdr="by", fdr_level=0.1,
              all=True)
     assert "Benjamini-Yekutieli at false discovery rate 0.1" in str(by.method_note())
 
 
 def test_fdr_shift_breaches_the_pairs_benjamini_hochberg_rejects() -> None:
-    rule = one(kind="shift", measure="rolling:21", long="rolling:126", variance="fisher",
+    rule = one(kind="shift", measure="rolling:21", baseline="rolling:126", variance="fisher",
                fdr="bh", all=True)
     size = len(rule.targets.pairs)
     shorts = np.full(size, 0.3)
@@ -946,6 +1010,6 @@ def test_bad_shift_variance_fdr_and_rate_settings_are_one_line_errors(
     table: dict[str, object], message: str
 ) -> None:
     text = error_of({"name": "t", "kind": "shift", "measure": "rolling:21",
-                     "long": "rolling:126", "all": True, **table})
+                     "baseline": "rolling:126", "all": True, **table})
     assert text == message
     assert "\n" not in text

@@ -1,7 +1,7 @@
-"""The ``basket`` rule: a group's average pairwise correlation crosses a level.
+"""The ``group-average`` rule: a group's average pairwise correlation crosses a level.
 
 The average is the plain mean of the correlations of all pairs within the group that have
-a value today (common practice for a basket's "average correlation"); it is NaN when fewer
+a value today (common practice for a group's "average correlation"); it is NaN when fewer
 than ``min_coverage`` of the group's pairs have one, so a thinly populated day cannot raise
 an alert on a handful of pairs. Levels, dead-band and ``hold`` work as for ``level``. The
 target label is the group name and ``n`` reports how many pairs the average used.
@@ -27,10 +27,10 @@ GROUP_TARGET_PARAMETERS: tuple[Param, ...] = (
 
 
 @dataclass(frozen=True, eq=False, kw_only=True)
-class BasketRule(Rule):
+class GroupAverageRule(Rule):
     """A group's average pairwise correlation above (or below) a level."""
 
-    kind: ClassVar[str] = "basket"
+    kind: ClassVar[str] = "group-average"
     summary: ClassVar[str] = "A group's average pairwise correlation crosses a level."
     target_parameters: ClassVar[tuple[Param, ...]] = GROUP_TARGET_PARAMETERS
     own_parameters: ClassVar[tuple[Param, ...]] = (
@@ -54,7 +54,7 @@ class BasketRule(Rule):
     @classmethod
     def from_table(
         cls, reader: TableReader, universe: Universe, default_measure: str | None
-    ) -> BasketRule:
+    ) -> GroupAverageRule:
         common = read_common(reader)
         return cls(
             **common.fields(),

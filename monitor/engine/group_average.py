@@ -1,6 +1,6 @@
-"""Basket gauge: how tightly a group of instruments moves together on each day.
+"""Group average: how tightly a group of instruments moves together on each day.
 
-The gauge is the average off-diagonal correlation of the group, over the pairs whose value
+The group average is the average off-diagonal correlation of the group, over the pairs whose value
 is defined that day (NaN pairs are left out), reported with the number of pairs used.
 """
 
@@ -19,29 +19,29 @@ from monitor.errors import EngineInputError
 
 
 @dataclass(frozen=True)
-class BasketDay:
-    """The gauge on one day: ``value`` (NaN when no pair is defined) and ``pairs_used``."""
+class GroupAverageDay:
+    """The group average on one day: ``value`` (NaN when no pair is defined) and ``pairs_used``."""
 
     t: int
     value: float
     pairs_used: int
 
 
-def basket_members(members: npt.ArrayLike) -> IntArray:
+def group_members(members: npt.ArrayLike) -> IntArray:
     """Distinct member columns, sorted; raises EngineInputError for fewer than two."""
     index = np.asarray(members)
     if index.ndim != 1 or (index.size and not np.issubdtype(index.dtype, np.integer)):
         raise EngineInputError(
-            f"basket members must be a list of instrument indices, got {members!r}")
+            f"group members must be a list of instrument indices, got {members!r}")
     unique = np.unique(index.astype(np.intp))
     if unique.size < 2:
-        raise EngineInputError(f"a basket needs at least 2 distinct members, got {unique.tolist()}")
+        raise EngineInputError(f"a group needs at least 2 distinct members, got {unique.tolist()}")
     return unique
 
 
-def basket_pairs(members: npt.ArrayLike) -> IntArray:
+def group_pairs(members: npt.ArrayLike) -> IntArray:
     """Every pair ``i < j`` of the members, as a (P, 2) int array (P = m (m - 1) / 2)."""
-    index = basket_members(members)
+    index = group_members(members)
     upper_i, upper_j = np.triu_indices(index.size, k=1)
     return np.stack([index[upper_i], index[upper_j]], axis=1)
 
@@ -53,8 +53,8 @@ def _average(values: FloatArray) -> tuple[float, int]:
     return float(finite.mean()), int(finite.size)
 
 
-def basket_gauge(matrix: npt.ArrayLike, members: npt.ArrayLike, t: int = -1) -> BasketDay:
-    """The gauge from one day's (N, N) correlation matrix.
+def group_average(matrix: npt.ArrayLike, members: npt.ArrayLike, t: int = -1) -> GroupAverageDay:
+    """The group average from one day's (N, N) correlation matrix.
 
     Parameters
     ----------
@@ -64,26 +64,26 @@ def basket_gauge(matrix: npt.ArrayLike, members: npt.ArrayLike, t: int = -1) -> 
         Day to record in the result.
     """
     values = np.asarray(matrix, dtype=np.float64)
-    pairs = basket_pairs(members)
+    pairs = group_pairs(members)
     if values.ndim != 2 or values.shape[0] != values.shape[1]:
-        raise EngineInputError(f"basket_gauge needs an (N, N) matrix, got {values.shape}")
+        raise EngineInputError(f"group_average needs an (N, N) matrix, got {values.shape}")
     if pairs.max() >= values.shape[0]:
         raise EngineInputError(
-            f"basket member {int(pairs.max())} is outside 0..{values.shape[0] - 1}")
+            f"group member {int(pairs.max())} is outside 0..{values.shape[0] - 1}")
     value, used = _average(values[pairs[:, 0], pairs[:, 1]])
-    return BasketDay(t, value, used)
+    return GroupAverageDay(t, value, used)
 
 
-def basket_series(
+def group_average_series(
     returns: npt.ArrayLike,
     measure: Measure | str,
     members: npt.ArrayLike,
     *,
     start: int = 0,
     stop: int | None = None,
-) -> Iterator[BasketDay]:
-    """The gauge for rows ``start .. stop-1``, computing only the members' pairs."""
-    pairs = basket_pairs(members)
+) -> Iterator[GroupAverageDay]:
+    """The group average for rows ``start .. stop-1``, computing only the members' pairs."""
+    pairs = group_pairs(members)
     for day in stream_on_pair_dates(returns, measure, pairs, start=start, stop=stop):
         value, used = _average(day.value)
-        yield BasketDay(day.t, value, used)
+        yield GroupAverageDay(day.t, value, used)
