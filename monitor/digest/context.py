@@ -215,6 +215,15 @@ class AlertView:
         return f"{self.a.symbol} / {self.b.symbol}"
 
     @property
+    def names(self) -> str:
+        """The instruments' names as "Name A / Name B", a side without a name by its
+        symbol; "" when no side has a name (so nothing prints as empty brackets)."""
+        sides = [self.a] if not self.b.symbol else [self.a, self.b]
+        if not any(side.name.strip() for side in sides):
+            return ""
+        return " / ".join(side.name.strip() or side.symbol for side in sides)
+
+    @property
     def top_drivers(self) -> tuple[DriverView, ...]:
         """At most `MAX_DRIVERS` driver days, largest |contribution| first."""
         ranked = sorted(

@@ -736,3 +736,19 @@ def test_benchmark_quick_json_reports_its_figures(capsys: pytest.CaptureFixture[
     assert figures["target_seconds"] == 10.0
     assert figures["total_seconds"] > 0
     assert isinstance(figures["within_target"], bool)
+
+
+def test_instruments_without_names_print_no_empty_brackets() -> None:
+    unnamed_a, unnamed_b = Instrument("QAV", ""), Instrument("QBX", "")
+    context = _context(new_alerts=[
+        _alert(51, "warning", unnamed_a, unnamed_b, value=0.84),
+        _alert(52, "warning", KLV, unnamed_b, value=0.85),
+    ], continuing=[], acknowledged=[], cleared=[])
+    text = render_digest(context).text
+    assert "( / )" not in text and "()" not in text
+    assert re.search(r"\] QAV / QBX *\n", text)
+    # one named side: the other shown by its symbol, never an empty slot
+    assert "KLV / QBX  (Kelvara Industrial / QBX)" in text
+    html = _squash(BeautifulSoup(render_digest(context).html_for_email,
+                                 "html.parser").get_text(" "))
+    assert "( / )" not in html and "()" not in html
