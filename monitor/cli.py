@@ -82,32 +82,19 @@ def load(args: argparse.Namespace) -> Any:
     return load_settings(getattr(args, "config", None))
 
 
-def _plain_dates(frame: pd.DataFrame) -> pd.DataFrame:
-    """Dates as YYYY-MM-DD text (a time of day only where there is one)."""
-    out = frame.copy()
-    for col in out.columns:
-        values = out[col]
-        if pd.api.types.is_datetime64_any_dtype(values):
-            midnight = values.dropna().eq(values.dropna().dt.normalize()).all()
-            text = values.dt.strftime("%Y-%m-%d") if midnight else values.map(
-                lambda v: None if pd.isna(v) else v.isoformat())
-            out[col] = text.astype(object).where(values.notna(), None)
-        elif values.dtype == object:
-            out[col] = values.map(lambda v: v.isoformat() if isinstance(v, dt.date) else v)
-    return out
-
-
 def print_frame(frame: pd.DataFrame, fmt: str = "table") -> None:
     """Print a frame as an aligned table ('-' for what is missing), CSV or JSON records
-    (dates as YYYY-MM-DD)."""
+    (monitor.tabular: dates as YYYY-MM-DD, full precision, null for missing)."""
+    from monitor import tabular
+
     if fmt == "csv":
-        sys.stdout.write(_plain_dates(frame).to_csv(index=False))
+        sys.stdout.write(tabular.to_csv(frame))
     elif fmt == "json":
-        sys.stdout.write(_plain_dates(frame).to_json(orient="records", indent=1) + "\n")
+        sys.stdout.write(tabular.to_json(frame) + "\n")
     elif frame.empty:
         print("(none)")
     else:
-        plain = _plain_dates(frame)
+        plain = tabular.plain_dates(frame)
         shown = plain.astype(object).where(plain.notna(), "-")
         print(shown.to_string(index=False))
 

@@ -42,10 +42,11 @@ def list_alerts(store: Store, settings: Settings, *, open_only: bool = True,
     with store.connect() as conn:
         rows = alerts_store.list_alerts(conn, open_only=open_only, since=since, target=target,
                                         rule=rule)
-    columns = ["id", "state", "severity", "rule", "kind", "target", "opened", "cleared",
-               "value", "peak", "threshold", "acknowledged_by"]
+    columns = ["id", "state", "severity", "rule", "kind", "target", "first_breach", "opened",
+               "cleared", "value", "peak", "threshold", "acknowledged_by"]
     return pd.DataFrame(
-        [(a.id, a.state, a.severity, a.rule, a.rule_kind, a.target, a.opened_on, a.cleared_on,
+        [(a.id, a.state, a.severity, a.rule, a.rule_kind, a.target, a.first_breach_on,
+          a.opened_on, a.cleared_on,
           a.last_value, a.peak_value, a.level, a.acknowledged_by) for a in rows],
         columns=columns,
     )

@@ -168,8 +168,8 @@ def test_alerts_table_gives_every_number_its_unit_and_no_none(
     assert main(["alerts", "--all", "--config", config]) == 0
     table = capsys.readouterr().out
     header = table.splitlines()[0].split()
-    assert header == ["id", "state", "severity", "rule", "target", "opened", "cleared",
-                      "value", "peak", "threshold", "acknowledged_by"]
+    assert header == ["id", "state", "severity", "rule", "target", "first_breach", "opened",
+                      "cleared", "value", "peak", "threshold", "acknowledged_by"]
     assert "None" not in table and "nan" not in table
     level_rows = [line for line in table.splitlines() if "hedge-break" in line]
     assert level_rows and all(line.count(" corr") == 3 for line in level_rows)
@@ -181,6 +181,18 @@ def test_alerts_table_gives_every_number_its_unit_and_no_none(
     assert rows[0]["opened"] >= BREAK_START.isoformat() and len(rows[0]["opened"]) == 10
     assert {row["kind"] for row in rows} <= {"level", "jump"}
     assert all(isinstance(row["threshold"], float) for row in rows)
+    # the first breach as well as the opening: a level rule with hold = 3 opens on the
+    # third day below its level
+    level = [row for row in rows if row["rule"] == "hedge-break"]
+    assert level and all(len(row["first_breach"]) == 10 for row in level)
+    with store.connect() as conn:
+        stored = {a.id: a for a in alerts_store.list_alerts(conn)}
+    for row in level:
+        alert = stored[row["id"]]
+        assert row["first_breach"] == alert.first_breach_on.isoformat()
+        assert row["opened"] == alert.opened_on.isoformat()
+        assert alert.first_breach_on < alert.opened_on
+        assert row["value"] == alert.last_value  # full precision, no rounding
 
 
 @pytest.mark.parametrize(
@@ -215,6 +227,32 @@ def test_series_defaults_to_the_settings_measures(
     only = capsys.readouterr().out.splitlines()
     assert {line.split(",")[1] for line in only[1:]} == {"rolling:21"}
     assert only[1].startswith("2023-12-01,rolling:21,")
+
+
+def test_series_json_and_csv_have_the_same_fields_and_every_digit(
+    desk: tuple[Store, Settings], capsys: pytest.CaptureFixture[str]
+) -> None:
+    import csv
+    import io
+
+    from monitor.pipeline import series
+
+    store, settings = desk
+    config = str(settings.path)
+    args = ["series", "KLV", "DUNQ", "--measure", "ewma:hl=21", "--start", "2023-11-01",
+            "--config", config]
+    assert main([*args, "--format", "json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert main([*args, "--format", "csv"]) == 0
+    table = list(csv.DictReader(io.StringIO(capsys.readouterr().out)))
+    frame = series(store, settings, "KLV", "DUNQ", "ewma:hl=21",
+                   start=dt.date(2023, 11, 1))
+    assert list(rows[0]) == list(table[0]) == ["date", "measure", "value", "low", "high", "n"]
+    assert len(rows) == len(table) == len(frame)
+    for row, line, value in zip(rows, table, frame["value"], strict=True):
+        assert row["date"] == line["date"] and len(row["date"]) == 10
+        # every digit: the JSON number and the CSV text are the same double as the frame's
+        assert row["value"] == float(line["value"]) == value
 
 
 def test_pages_show_the_mutes_on_the_index_and_on_the_muted_pages(
