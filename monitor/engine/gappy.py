@@ -42,7 +42,7 @@ import numpy as np
 from monitor._typing import Returns2D
 from monitor.engine.kernels import STALE_RATIO, constant
 from monitor.engine.layout import BoolArray, FloatArray, IntArray, TileLayout
-from monitor.engine.windows import flat_columns
+from monitor.engine.windows import column_shift, flat_columns
 
 DayArrays = tuple[FloatArray, FloatArray, BoolArray]
 
@@ -108,9 +108,26 @@ class _Side:
         rows, cols = np.nonzero(self.mask < 1.0)
         self.gaps = np.split(cols, np.searchsorted(rows, np.arange(1, self.mask.shape[0])))
 
-    def absorbed(self, first: int, days: int, window: int) -> FloatArray:
-        """Squares taken in and out by the updates of days ``first .. days - 1``."""
-        return self.q[first + window : days + window].sum(axis=0) + self.q[first:days].sum(axis=0)
+    def absorbed(self, first: int, days: int, window: int, start: FloatArray) -> FloatArray:
+        """(days, K): squares taken in and out since the anchor, after each day's update
+        (``start`` before day 0; days before ``first`` are not updates)."""
+        taken = np.zeros((days, self.q.shape[1]))
+        taken[first:] = self.q[first + window : days + window] + self.q[first:days]
+        return start + np.cumsum(taken, axis=0)
+
+    def over(self, taken: FloatArray) -> BoolArray:
+        """(days,): some instrument's running sums have taken in more than REANCHOR_RATIO
+        times its current window's squares (a constant or empty window has no scale), or
+        its window mean has moved further from the shift than SHIFT_SLACK allows."""
+        squares = self.squares
+        count = np.maximum(self.count, 1.0)
+        mean = self.total / count  # about the shift
+        variance = np.maximum(squares / count - mean * mean, 0.0)
+        bad = (taken > REANCHOR_RATIO * squares) & (squares > 0)
+        # (an instrument without variance in its window gives NaN whatever its sums)
+        moving = variance > STALE_RATIO * squares / count
+        bad |= (mean * mean > SHIFT_SLACK * variance) & moving
+        return np.asarray(bad.any(axis=1))
 
 
 def _running(rows: FloatArray, window: int, days: int) -> FloatArray:
@@ -133,7 +150,8 @@ def _keeps(state: GappyState | None, a: int, sides: list[_Side]) -> bool:
         count = np.maximum(side.count[0], 1.0)
         mean = side.total[0] / count  # about the kept shift
         variance = np.maximum(squares / count - mean * mean, 0.0)
-        if np.any(mean * mean > SHIFT_SLACK * variance):
+        moving = variance > STALE_RATIO * squares / count
+        if np.any((mean * mean > SHIFT_SLACK * variance) & moving):
             return False
     return True
 
@@ -177,6 +195,10 @@ def gappy_days(
     left = _Side(returns, layout.rows, kept_shift, a, b, window)
     right = left if symmetric else _Side(returns, layout.cols, kept_shift, a, b, window)
     if not _keeps(state, a, [left] if symmetric else [left, right]):
+        # the anchor's shift: each instrument's mean over day a's window
+        shift = np.array(shift)
+        columns = np.union1d(layout.rows, layout.cols)
+        shift[columns] = column_shift(returns[max(0, a - window + 1) : a + 1][:, columns])
         state = _anchor(returns, layout, shift, a, b, window)
         left = _Side(returns, layout.rows, shift, a, b, window)
         right = left if symmetric else _Side(returns, layout.cols, shift, a, b, window)
@@ -184,6 +206,48 @@ def gappy_days(
     else:
         first_update = 0
     assert state is not None
+    days = b - a
+    # the first day whose running sums would hold too much rounding: stop before it and
+    # take a fresh anchor there
+    taken_left = left.absorbed(first_update, days, window, state.absorbed_left)
+    over = left.over(taken_left)
+    taken_right = taken_left
+    if not symmetric:
+        taken_right = right.absorbed(first_update, days, window, state.absorbed_right)
+        over |= right.over(taken_right)
+    hits = np.flatnonzero(over)
+    if hits.size:
+        stop = int(hits[0])  # 0 only for carried sums: then anchor on day a itself
+        if stop:
+            yield from _days(
+                left, right, layout, state, a, a + stop, window, min_count, first_update, returns
+            )
+        if carry is not None:
+            carry[0] = None
+        yield from gappy_days(returns, layout, shift, a + stop, b, window, min_count, carry)
+        return
+    state.absorbed_left = taken_left[-1]
+    state.absorbed_right = taken_right[-1]
+    if carry is not None:
+        carry[0] = state
+    yield from _days(left, right, layout, state, a, b, window, min_count, first_update, returns)
+
+
+def _days(
+    left: _Side,
+    right: _Side,
+    layout: TileLayout,
+    state: GappyState,
+    a: int,
+    b: int,
+    window: int,
+    min_count: int,
+    first_update: int,
+    returns: Returns2D,
+) -> Iterator[DayArrays]:
+    """Days ``a .. b - 1`` from the state of day ``a - 1`` (or day ``a`` when
+    ``first_update`` is 1), the sides' rows starting at day ``a``."""
+    symmetric = layout.symmetric
     days = b - a
     flat_left = flat_columns(returns, layout.rows, a, b, window)
     flat_right = flat_left if symmetric else flat_columns(returns, layout.cols, a, b, window)
@@ -199,12 +263,7 @@ def gappy_days(
             np.stack([left.x[steps + window], left.x[steps]], axis=2),
             np.stack([right.x[steps + window], -right.x[steps]], axis=2),
         )
-    state.absorbed_left = state.absorbed_left + left.absorbed(first_update, days, window)
-    if not symmetric:
-        state.absorbed_right = state.absorbed_right + right.absorbed(first_update, days, window)
-    state.day = -1  # until the last day of the chunk is done
-    if carry is not None:
-        carry[0] = state
+    state.day = -1  # until the last day is done
     buffers = _Buffers(shape, symmetric)
     no_stale = constant(False, shape, np.bool_)
     enough_floor = min_count * (1.0 - 1e-12)

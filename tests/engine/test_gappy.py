@@ -171,3 +171,28 @@ def test_huge_returns_are_clipped_not_overflowed() -> None:
     expected = _last_window(clipped, 50)
     assert np.all(np.isfinite(day.value))
     assert np.max(np.abs(day.value - expected)) <= 1e-12
+
+
+def test_every_day_after_a_burst_of_huge_moves_agrees_with_two_pass() -> None:
+    """When moves a thousand times larger leave the window, the running sums keep their
+    rounding unless re-anchored on that very day (not only at the next chunk): every day
+    after the episode agrees with a two-pass computation on the common days."""
+    returns = market_panel(4200, 5, seed=9)
+    returns[3000:3200] *= 1000.0
+    start = 2900
+    days = list(stream(returns, "rolling:63,min=20", start=start))
+    worst, checked = 0.0, 0
+    for day in days[::2]:
+        block = returns[day.t - 62 : day.t + 1]
+        for i in range(5):
+            for j in range(i + 1, 5):
+                keep = ~(np.isnan(block[:, i]) | np.isnan(block[:, j]))
+                if keep.sum() < 20:
+                    continue
+                x, y = block[keep, i], block[keep, j]
+                dx, dy = x - x.mean(), y - y.mean()
+                expected = np.dot(dx, dy) / np.sqrt(np.dot(dx, dx) * np.dot(dy, dy))
+                worst = max(worst, abs(day.value[i, j] - expected))
+                checked += 1
+    assert checked > 5000
+    assert worst <= 1e-13
