@@ -156,7 +156,8 @@ def _check(args: argparse.Namespace) -> int:
 
 def _ingest_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("files", nargs="+", type=Path, metavar="FILE",
-                        help="closes files (.csv or .csv.gz); each is ingested on its own")
+                        help="closes files (.csv or .csv.gz); each is ingested on its own; "
+                             "- reads one file from standard input")
     parser.add_argument("--format", choices=("auto", "long", "wide"), default="auto",
                         help="layout: long = date,symbol,close[,source]; wide = date plus one "
                              "column per symbol; auto decides from the header (default)")
@@ -171,34 +172,55 @@ def _ingest(args: argparse.Namespace) -> int:
     from monitor.pipeline import ingest_file, open_settings_store
 
     settings = load(args)
+    if sum(str(p) == "-" for p in args.files) > 1:
+        raise ComoveError("ingest: standard input (-) can be named only once")
     store = open_settings_store(settings)
     failed = 0
-    for path in args.files:
-        try:
-            report = ingest_file(store, settings, path, layout=args.format,
-                                 skip_bad=args.skip_bad)
-        except IngestError as exc:
-            for problem in exc.problems:
-                print(problem, file=sys.stderr)
-            print(f"Error: {exc}", file=sys.stderr)
-            failed += 1
-            continue
-        _print_ingest(report)
+    try:
+        for path in args.files:
+            data = sys.stdin.buffer.read() if str(path) == "-" else None
+            try:
+                report = ingest_file(store, settings,
+                                     Path("stdin") if data is not None else path,
+                                     layout=args.format, skip_bad=args.skip_bad, data=data)
+            except IngestError as exc:
+                for problem in _first(exc.problems):
+                    print(problem, file=sys.stderr)
+                print(f"Error: {exc}", file=sys.stderr)
+                failed += 1
+                continue
+            _print_ingest(report)
+    finally:
+        store.dispose()
     return 1 if failed else 0
+
+
+PROBLEMS_SHOWN = 20
+"""Problems printed per file; the rest are counted (the batch keeps the first 200)."""
+
+
+def _first(problems: list[str], prefix: str = "") -> list[str]:
+    shown = [f"{prefix}{p}" for p in problems[:PROBLEMS_SHOWN]]
+    if len(problems) > PROBLEMS_SHOWN:
+        shown.append(f"{prefix}... and {len(problems) - PROBLEMS_SHOWN} more problem(s)")
+    return shown
 
 
 def _print_ingest(report: Any) -> None:
     name = Path(report.file).name
+    for note in _first(report.notes, "  no close: "):
+        print(note, file=sys.stderr)
     if report.already_ingested:
-        print(f"{name}: already ingested as batch {report.batch_id}; nothing to do")
+        seen = f" (as batch {report.batch_id})" if report.batch_id is not None else ""
+        print(f"{name}: every close is already in the store{seen}; nothing to do")
         return
     print(
         f"{name}: batch {report.batch_id}: {report.rows_read} rows read, "
         f"{report.closes_new} new closes, {report.closes_restated} restated, "
         f"{report.closes_unchanged} unchanged, {report.rows_rejected} rejected"
     )
-    for problem in report.problems:
-        print(f"  skipped: {problem}", file=sys.stderr)
+    for problem in _first(report.problems, "  skipped: "):
+        print(problem, file=sys.stderr)
     for row in report.restatements.itertuples():
         print(f"  restated: {row.symbol} on {row.date.date()}: {row.old_close:g} -> "
               f"{row.new_close:g}")

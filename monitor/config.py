@@ -24,6 +24,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 from monitor._typing import ReturnKind, SmtpSecurity
 from monitor.errors import ConfigError
 from monitor.renamed import OLD_SETTING_KEYS, old_name_hint
+from monitor.symbols import symbol_problem
 
 DEFAULT_FILE = "comove.toml"
 ENV_VAR = "COMOVE_CONFIG"
@@ -70,11 +71,8 @@ def _timezone(value: Any) -> str | None:
     return None
 
 
-_SYMBOL = re.compile(r"^[^\s,;]{1,64}$")
-
-
 def _symbol(value: Any) -> str | None:
-    return None if _SYMBOL.match(value) else "1 to 64 characters without spaces, commas or ';'"
+    return symbol_problem(value)
 
 
 @dataclass(frozen=True)
@@ -85,6 +83,13 @@ class StoreSettings:
         "sqlite:///comove.sqlite",
         "SQLAlchemy URL of the store. A relative SQLite path is resolved against the folder "
         "of the settings file; PostgreSQL as postgresql://user@host:port/database.",
+    )
+    busy_timeout: float = setting(
+        30.0,
+        "Seconds a writer (an ingest, a run, a backfill) waits for another one to finish "
+        "before it stops with an error; it says once that it is waiting.",
+        kind=(int, float),
+        check=_positive,
     )
 
 

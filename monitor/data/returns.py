@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from monitor._typing import ReturnKind
+from monitor.data.parse import MAX_CLOSE, MIN_CLOSE
 from monitor.errors import ConfigError
 
 DEFAULT_MAX_GAP = 5
@@ -67,6 +68,10 @@ def closes_to_returns(
         keep = np.arange(len(panel) - 1, -1, -horizon)[::-1]
         panel = panel.iloc[keep]
     values = panel.to_numpy()
+    # Only closes ingest accepts enter a return: a store written before that check may
+    # still hold an extreme close (1e-320), which counts as missing. Within the range the
+    # ratio of two closes is at most MAX_CLOSE / MIN_CLOSE, so every return is finite.
+    values = np.where((values >= MIN_CLOSE) & (values <= MAX_CLOSE), values, np.nan)
     rows = len(panel)
     if rows == 0:
         return pd.DataFrame(np.empty((0, values.shape[1])), index=panel.index[1:],

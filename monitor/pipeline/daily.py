@@ -18,11 +18,11 @@ import pandas as pd
 from monitor.config import Settings
 from monitor.errors import IngestError, MailError
 from monitor.pipeline.evaluate import EvaluationReport, evaluate_range
-from monitor.pipeline.ingest import IngestReport, ingest_file
+from monitor.pipeline.ingest import IngestReport, bounded, ingest_file
 from monitor.pipeline.lease import evaluation_lease, renew
 from monitor.pipeline.publish import DigestOutcome, build_pages, render_digest_files, send_digest
 from monitor.pipeline.store import FEED_RULE, desk_today, pages_folder, schedule_of
-from storage import Store
+from storage import Store, StoreError
 from storage import alerts as alerts_store
 from storage import closes as closes_store
 from storage import outbox as outbox_store
@@ -44,6 +44,10 @@ def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = N
 
     `today` is the latest date a close may carry (closes after it are refused as future);
     it defaults to the desk's date by the real clock, never earlier.
+
+    A file never stays in the inbox to fail again the next evening: whatever its content
+    makes go wrong, it is rejected with the reason. Only a store that cannot be written
+    (unreachable, or locked beyond the busy timeout) leaves the files for the next run.
     """
     inbox = settings.inbox
     inbox.mkdir(parents=True, exist_ok=True)
@@ -52,12 +56,21 @@ def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = N
     for path in files:
         try:
             result = ingest_file(store, settings, path, today=today, now=now)
-        except IngestError as exc:
+        except StoreError:
+            raise
+        except Exception as exc:
+            if isinstance(exc, IngestError):
+                lines = [str(exc), *bounded(exc.problems, PROBLEMS_FILE_LINES)]
+            else:
+                # Not foreseen by the parser: a defect, but the file must not block the inbox.
+                LOG.error("%s: unexpected %s while ingesting: %s", path.name,
+                          type(exc).__name__, exc)
+                lines = [f"{path.name}: could not be ingested (unexpected "
+                         f"{type(exc).__name__}: {exc}); nothing from the file was written"]
             target = _move(path, inbox / "rejected")
-            lines = [str(exc), *exc.problems]
             (target.parent / f"{target.name}.problems.txt").write_text(
                 "\n".join(lines) + "\n", encoding="utf-8")
-            report.rejected.append((target, str(exc)))
+            report.rejected.append((target, lines[0]))
             continue
         _move(path, inbox / "processed")
         report.accepted.append(result)
@@ -69,7 +82,7 @@ def inbox_files(inbox: Path) -> list[Path]:
     then by modification time (a restatement dropped after the original comes after it),
     then by name. A file whose dates cannot be read goes last; ingesting it says why."""
     files = [p for p in inbox.iterdir()
-             if p.is_file() and (p.name.endswith(".csv") or p.name.endswith(".csv.gz"))]
+             if p.is_file() and p.name.lower().endswith(INBOX_SUFFIXES)]
     if len(files) < 2:
         return files
 
@@ -90,6 +103,13 @@ def _latest_date(path: Path) -> dt.date | None:
     if parsed.rows.empty:
         return None
     return pd.Timestamp(parsed.rows["date"].max()).date()
+
+
+INBOX_SUFFIXES = (".csv", ".csv.gz")
+"""File names read from the inbox, in any letter case (PRICES.CSV too)."""
+
+PROBLEMS_FILE_LINES = 1000
+"""Problems written to a rejected file's `.problems.txt`; the rest are counted."""
 
 
 def _move(path: Path, folder: Path) -> Path:

@@ -25,7 +25,8 @@ def desk_today(settings: Settings, now: dt.datetime | None = None) -> dt.date:
 
 
 def open_settings_store(settings: Settings, *, create: bool = False) -> Store:
-    store = open_store(settings.store_url, create=create)
+    store = open_store(settings.store_url, create=create,
+                       busy_timeout=float(settings.store.busy_timeout))
     if create:
         with store.begin() as conn:
             closes_store.sync_instruments(conn, instrument_rows(settings))
