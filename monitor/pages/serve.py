@@ -24,6 +24,13 @@ relax the style part only, never scripts: SVG charts (matplotlib writes inline s
 the digest archive under `monitor.pages.DIGEST_ARCHIVE_DIR` (digests are email HTML, whose
 styles must be inline).
 
+Connections are served by a bounded pool of `WORKERS` threads (connections beyond it wait
+in the listen queue of `LISTEN_BACKLOG`, never a thread each); a connection that sends
+nothing for `CONNECTION_TIMEOUT` seconds is closed, so idle or slow clients cannot hold the
+pool. A client that goes away mid-answer (a broken pipe, a reset) is logged at debug level
+on the "comove.pages" logger; any other fault in a request is one warning line, never a
+traceback.
+
 The server binds to 127.0.0.1 unless told otherwise, and refuses any address that is not
 loopback unless ``allow_remote=True`` is passed: the pages name the desk's positions and
 people, and a browser on the same machine is the intended reader.
@@ -32,11 +39,13 @@ people, and a browser on the same machine is the intended reader.
 from __future__ import annotations
 
 import ipaddress
+import logging
 import socket
 import sys
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from http import HTTPStatus
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from http.server import BaseHTTPRequestHandler, HTTPServer
 from pathlib import Path
 from typing import Any, cast
 from urllib.parse import unquote
@@ -144,20 +153,68 @@ def _policy(root: Path, file: Path) -> str:
     return PAGE_POLICY
 
 
-class SiteServer(ThreadingHTTPServer):
-    """A `ThreadingHTTPServer` that knows its site folder and how loudly to log."""
+LOG = logging.getLogger("comove.pages")
 
-    daemon_threads = True
+WORKERS = 16
+"""Threads answering requests; each answer is one file read from the local disk."""
+LISTEN_BACKLOG = 512
+"""Connections the kernel queues while every worker is busy (socketserver's default of 5
+drops connections under a burst, which clients see as time-outs)."""
+CONNECTION_TIMEOUT = 10.0
+"""Seconds a connection may stay silent (before or within its request) before it is closed."""
 
-    def __init__(self, address: tuple[str, int], root: Path, *, quiet: bool = True) -> None:
+_GONE = (BrokenPipeError, ConnectionResetError, ConnectionAbortedError, TimeoutError)
+"""Ways a client leaves early; they are the client's business, not a fault of ours."""
+
+
+class SiteServer(HTTPServer):
+    """An `HTTPServer` that knows its site folder and how loudly to log, and answers
+    connections from a bounded thread pool with a per-connection timeout."""
+
+    request_queue_size = LISTEN_BACKLOG
+
+    def __init__(self, address: tuple[str, int], root: Path, *, quiet: bool = True,
+                 workers: int = WORKERS, timeout: float = CONNECTION_TIMEOUT) -> None:
         self.root = root
         self.quiet = quiet
+        self.connection_timeout = timeout
+        self._pool = ThreadPoolExecutor(max_workers=workers,
+                                        thread_name_prefix="comove-pages")
         super().__init__(address, _SiteHandler)
+
+    def process_request(self, request: Any, client_address: Any) -> None:
+        self._pool.submit(self._answer, request, client_address)
+
+    def _answer(self, request: Any, client_address: Any) -> None:
+        try:
+            self.finish_request(request, client_address)
+        except Exception:
+            self.handle_error(request, client_address)
+        finally:
+            self.shutdown_request(request)
+
+    def handle_error(self, request: Any, client_address: Any) -> None:
+        error = sys.exc_info()[1]
+        peer = client_address[0] if client_address else "?"
+        if isinstance(error, _GONE):
+            LOG.debug("pages: %s went away: %s", peer, type(error).__name__)
+        else:
+            LOG.warning("pages: request from %s failed: %s: %s", peer,
+                        type(error).__name__, error)
+
+    def server_close(self) -> None:
+        super().server_close()
+        self._pool.shutdown(wait=False, cancel_futures=True)
 
 
 class _SiteHandler(BaseHTTPRequestHandler):
     server_version = "comove"
     sys_version = ""
+
+    def setup(self) -> None:
+        super().setup()
+        # Every read and write on the connection, the request line included.
+        self.connection.settimeout(cast(SiteServer, self.server).connection_timeout)
 
     @property
     def site(self) -> SiteServer:
@@ -243,7 +300,9 @@ def make_server(
     *,
     allow_remote: bool = False,
     quiet: bool = True,
-) -> ThreadingHTTPServer:
+    workers: int = WORKERS,
+    timeout: float = CONNECTION_TIMEOUT,
+) -> HTTPServer:
     """Create (and bind) a read-only server of a built site; call ``serve_forever()`` on it.
 
     Parameters
@@ -260,10 +319,14 @@ def make_server(
         pages. Off by default: the pages name the desk's positions and people.
     quiet : bool
         Log only refused and failed requests (to stderr); False logs every request.
+    workers : int
+        Threads answering connections (the pool is bounded; others wait to be accepted).
+    timeout : float
+        Seconds a connection may stay silent before it is closed.
 
     Returns
     -------
-    ThreadingHTTPServer
+    HTTPServer
         A `SiteServer`, bound and listening, not yet serving.
 
     Raises
@@ -285,12 +348,13 @@ def make_server(
         )
     server_class = type("SiteServer", (SiteServer,), {"address_family": family})
     try:
-        return cast(ThreadingHTTPServer, server_class((host, port), root.resolve(), quiet=quiet))
+        return cast(HTTPServer, server_class((host, port), root.resolve(), quiet=quiet,
+                                             workers=workers, timeout=timeout))
     except OSError as exc:
         raise ComoveError(f"port: cannot listen on {host}:{port}: {exc.strerror or exc}") from exc
 
 
-def server_url(server: ThreadingHTTPServer) -> str:
+def server_url(server: HTTPServer) -> str:
     """The http:// address of a server made by `make_server`, ending in "/"."""
     host, port = server.server_address[:2]
     text = host.decode() if isinstance(host, bytes) else str(host)

@@ -14,6 +14,8 @@ import hashlib
 import json
 import os
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -169,6 +171,39 @@ def build_site(
     pages, charts = render_pages(ctx)
     folder.mkdir(parents=True, exist_ok=True)
     folder = folder.resolve()
+    with build_lock(folder):
+        return _write_site(ctx, folder, pages, charts, workers)
+
+
+LOCK_NAME = ".comove-pages.lock"
+"""The file a build holds locked while it writes the folder (hidden: never served)."""
+
+
+@contextmanager
+def build_lock(folder: Path) -> Iterator[None]:
+    """Hold the folder's build lock: a second build of the same folder (the evening run
+    and a `comove pages build` at once) waits for the first to finish instead of writing
+    the same files and manifest under it. The lock goes with the process holding it, so a
+    killed build never leaves the folder locked."""
+    import fcntl
+    import logging
+
+    with open(folder / LOCK_NAME, "a+b") as handle:
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            logging.getLogger("comove.pages").info(
+                "another pages build is writing %s; waiting for it to finish", folder)
+            fcntl.flock(handle, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
+
+
+def _write_site(ctx: SiteContext, folder: Path, pages: dict[str, bytes],
+                charts: dict[str, svg_charts.HistoryChartRequest], workers: int | None
+                ) -> BuildReport:
     previous = _read_manifest(folder)
 
     written = unchanged = 0
@@ -223,4 +258,4 @@ def build_site(
     )
 
 
-__all__ = ["MANIFEST_NAME", "BuildReport", "build_site"]
+__all__ = ["LOCK_NAME", "MANIFEST_NAME", "BuildReport", "build_lock", "build_site"]
