@@ -672,7 +672,7 @@ def inspect_settings(explicit: str | os.PathLike[str] | None = None,
 
 @dataclass(frozen=True)
 class KeyDoc:
-    """One documented key, for the README reference and `comove config keys`."""
+    """One documented key, for the README settings reference and `comove check`."""
 
     path: str
     type: str

@@ -424,7 +424,8 @@ def run_daily_command(store: Store, settings: Settings, *, once: bool, as_of: dt
             else:
                 logger.info("no missed run dates to catch up")
     jobstore = _jobstore_url(store, settings)
-    logging.getLogger("comove").info("job store: %s", jobstore.split("@")[-1])
+    logging.getLogger("comove").info("schedule state (next run time) kept in %s",
+                                     jobstore.split("@")[-1])
     run_scheduler(schedule, job, jobstore_url=jobstore, logger=logger)
     return 0
 

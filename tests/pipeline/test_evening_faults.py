@@ -245,3 +245,22 @@ def test_run_catches_up_missed_days_at_start_in_a_store_that_never_ran(
     assert ran == missed
     assert len(started) == 1  # and then the scheduler process starts
     store.dispose()
+
+
+def test_run_names_where_the_schedule_state_is_kept_in_our_words(
+    tmp_path: Path, write_settings: Callable[..., Settings], monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """The start-up line says what is kept (the next run time) and where, in the desk's
+    words, not the scheduling library's "job store"."""
+    settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}",
+                              INSTRUMENTS + RULES + SCHEDULE)
+    store = init_store(settings)
+    monkeypatch.setattr(scheduler, "run_scheduler", lambda *a, **k: None)
+    assert scheduler.run_daily_command(store, settings, once=False, as_of=None, force=False,
+                                       catch_up=False) == 0
+    store.dispose()
+    err = capsys.readouterr().err
+    kept = f"schedule state (next run time) kept in sqlite:///{tmp_path / 'store-schedule.sqlite'}"
+    assert kept in err
+    assert "job store" not in err.lower()
