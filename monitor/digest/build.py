@@ -11,8 +11,9 @@ from __future__ import annotations
 
 import datetime as dt
 import math
+from bisect import bisect_left, bisect_right
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -33,12 +34,14 @@ from monitor.digest.context import (
     MoverView,
     _finite,
 )
+from monitor.digest.order import alert_sort_key
 from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
 from monitor.engine.drivers import drivers
 from monitor.engine.group_average import group_average
 from monitor.engine.strength import describe
 from monitor.rules import Rule
 from monitor.rules.targets import GroupTargets, PairTargets
+from monitor.templating import SCREENFUL
 
 MOVERS_SHOWN = 10
 DRIVER_WINDOW = 63
@@ -92,6 +95,8 @@ class DigestInputs:
     data_issues: Sequence[DataIssueView] = ()
     attention: str = ""
     data_through: dt.date | None = None
+    cards: int = SCREENFUL
+    """New alerts shown in full, with their chart and drivers (the strongest first)."""
 
 
 def _instrument(symbol: str, names: Mapping[str, str]) -> Instrument:
@@ -100,17 +105,6 @@ def _instrument(symbol: str, names: Mapping[str, str]) -> Instrument:
 
 def _finite_or_none(value: float | None) -> float | None:
     return float(value) if _finite(value) else None
-
-
-def _pair_series(returns: np.ndarray, a: int, b: int, measure: str, start: int, stop: int,
-                 level: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    days = list(stream_on_pair_dates(returns[:, [a, b]], measure, np.array([[0, 1]]),
-                                     start=start, stop=stop, level=level))
-    value = np.array([d.value[0] for d in days])
-    low = np.array([d.low[0] for d in days])
-    high = np.array([d.high[0] for d in days])
-    n = np.array([d.n[0] for d in days])
-    return value, low, high, n
 
 
 def _rule_levels(rule: Rule) -> tuple[float | None, float | None, str]:
@@ -138,9 +132,8 @@ def build_context(inputs: DigestInputs) -> DigestContext:
     dates = [d.date() for d in returns.index]
     t = len(dates) - 1
     day = dates[t] if dates else inputs.as_of
-    views: dict[str, list[AlertView]] = {"new": [], "continuing": [], "acknowledged": [],
-                                         "cleared": []}
     first_history = max(0, t - inputs.history_days + 1)
+    chosen: list[tuple[AlertFacts, str, Rule | None]] = []
     for facts in inputs.alerts:
         if not facts.announced:
             continue
@@ -154,9 +147,17 @@ def build_context(inputs: DigestInputs) -> DigestContext:
             bucket = "continuing"
         else:
             continue
-        rule = inputs.rules.get(facts.rule)
+        chosen.append((facts, bucket, inputs.rules.get(facts.rule)))
+    # One engine call per measure for the day's value of every pair alert (a flood is
+    # thousands of pairs); the history and drivers only for the cards shown in full.
+    today = _pair_values(matrix, column, [(f, r) for f, _, r in chosen], t, inputs.level)
+    views: dict[str, list[AlertView]] = {"new": [], "continuing": [], "acknowledged": [],
+                                         "cleared": []}
+    for facts, bucket, rule in chosen:
         views[bucket].append(_alert_view(facts, bucket, rule, inputs, matrix, column, dates, t,
-                                         first_history, day))
+                                         day, today.get(facts.id)))
+    views["new"] = _with_histories(views["new"], inputs, matrix, column, dates, t,
+                                   first_history)
     movers = _movers(inputs, matrix, symbols, t)
     group_averages, heatmaps = _groups(inputs, matrix, column, dates, t)
     counts = [_typical_count(m) for m in inputs.measures]
@@ -187,9 +188,85 @@ def _typical_count(measure: str) -> float:
     return (1 + lam) / (1 - lam)  # Kish's limit for EWMA weights (REFERENCES.md)
 
 
+def _primary(rule: Rule | None) -> str:
+    return rule.measures()[0] if rule is not None and rule.measures() else ""
+
+
+def _pair_columns(facts: AlertFacts, column: Mapping[str, int]) -> tuple[int, int] | None:
+    a_text, _, b_text = facts.target.partition("/")
+    if b_text and a_text in column and b_text in column:
+        return column[a_text], column[b_text]
+    return None
+
+
+Today = tuple[float, float, float, float]
+"""A pair's value, band low, band high and observations on the digest's day."""
+
+
+def _pair_values(matrix: np.ndarray, column: Mapping[str, int],
+                 alerts: Sequence[tuple[AlertFacts, Rule | None]], t: int, level: float
+                 ) -> dict[int, Today]:
+    """The day's value, band and count of every pair alert, one engine call per measure."""
+    by_measure: dict[str, list[tuple[int, tuple[int, int]]]] = {}
+    for facts, rule in alerts:
+        cols = _pair_columns(facts, column)
+        measure = _primary(rule)
+        if cols is not None and measure and t >= 0:
+            by_measure.setdefault(measure, []).append((facts.id, cols))
+    out: dict[int, Today] = {}
+    for measure, items in by_measure.items():
+        pairs = np.array([cols for _, cols in items], dtype=np.int64).reshape(-1, 2)
+        result = next(stream_on_pair_dates(matrix, measure, pairs, start=t, stop=t + 1,
+                                           level=level))
+        low, high = result.band
+        for k, (alert_id, _) in enumerate(items):
+            out[alert_id] = (float(result.value[k]), float(low[k]), float(high[k]),
+                             float(result.n[k]))
+    return out
+
+
+def _with_histories(alerts: Sequence[AlertView], inputs: DigestInputs, matrix: np.ndarray,
+                    column: Mapping[str, int], dates: list[dt.date], t: int,
+                    first_history: int) -> list[AlertView]:
+    """The new alerts, the `inputs.cards` strongest (the cards shown in full) with their
+    history chart and drivers; the others, summarised by the digest, without."""
+    ranked = sorted(alerts, key=alert_sort_key)
+    shown = [a for a in ranked[:inputs.cards]
+             if a.b.symbol and a.a.symbol in column and a.b.symbol in column and t >= 0]
+    by_measure: dict[str, list[AlertView]] = {}
+    for alert in shown:
+        primary = _primary(inputs.rules.get(alert.rule_name))
+        if primary:
+            by_measure.setdefault(primary, []).append(alert)
+    filled: dict[int | str, AlertView] = {}
+    for measure, group in by_measure.items():
+        pairs = np.array([[column[a.a.symbol], column[a.b.symbol]] for a in group],
+                         dtype=np.int64)
+        days = list(stream_on_pair_dates(matrix, measure, pairs, start=first_history,
+                                         stop=t + 1, level=inputs.level))
+        values = np.array([d.value for d in days]).reshape(len(days), len(group))
+        lows = np.array([d.low for d in days]).reshape(len(days), len(group))
+        highs = np.array([d.high for d in days]).reshape(len(days), len(group))
+        window = _driver_window(measure)
+        for k, alert in enumerate(group):
+            ia, ib = int(pairs[k, 0]), int(pairs[k, 1])
+            rows, contributions = drivers(matrix, ia, ib, t, window).ranked()
+            filled[alert.id] = replace(
+                alert,
+                history=AlertHistory(dates=dates[first_history:t + 1], values=values[:, k],
+                                     band_low=lows[:, k], band_high=highs[:, k]),
+                drivers=tuple(
+                    DriverView(day=dates[int(r)], contribution=float(c),
+                               return_a=float(matrix[int(r), ia]),
+                               return_b=float(matrix[int(r), ib]))
+                    for r, c in zip(rows, contributions, strict=True)),
+            )
+    return [filled.get(a.id, a) for a in alerts]
+
+
 def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: DigestInputs,
                 matrix: np.ndarray, column: Mapping[str, int], dates: list[dt.date], t: int,
-                first_history: int, day: dt.date) -> AlertView:
+                day: dt.date, today: Today | None) -> AlertView:
     event = facts.event_today or {}
     level, clear_level, direction = (None, None, "") if rule is None else _rule_levels(rule)
     measure = rule.measure_label() if rule is not None else ""
@@ -199,24 +276,9 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
     if not b_text and isinstance(getattr(rule, "targets", None), GroupTargets):
         a = Instrument(symbol=a_text, name="group average")
     value = low = high = n = math.nan
-    history = None
-    driver_views: list[DriverView] = []
-    primary = rule.measures()[0] if rule is not None and rule.measures() else ""
-    if b_text and a_text in column and b_text in column and primary and t >= 0:
-        ia, ib = column[a_text], column[b_text]
-        values, lows, highs, ns = _pair_series(matrix, ia, ib, primary, first_history, t + 1,
-                                               inputs.level)
-        value, low, high, n = values[-1], lows[-1], highs[-1], ns[-1]
-        history = AlertHistory(dates=dates[first_history:t + 1], values=values,
-                               band_low=lows, band_high=highs)
-        if bucket == "new":
-            window = _driver_window(primary)
-            rows, contributions = drivers(matrix, ia, ib, t, window).ranked()
-            driver_views = [
-                DriverView(day=dates[int(r)], contribution=float(c),
-                           return_a=float(matrix[int(r), ia]), return_b=float(matrix[int(r), ib]))
-                for r, c in zip(rows, contributions, strict=True)
-            ]
+    primary = _primary(rule)
+    if today is not None:
+        value, low, high, n = today
     elif isinstance(getattr(rule, "targets", None), GroupTargets) and primary and t >= 0:
         members = [column[s] for s in inputs.groups.get(a_text, ()) if s in column]
         if len(members) >= 2:
@@ -229,7 +291,7 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
         high = float(event.get("high") or math.nan)
         n = float(event.get("n") or math.nan)
     held_from = facts.first_breach_on
-    days_held = sum(1 for d in dates if held_from <= d <= day) if dates else 0
+    days_held = max(0, bisect_right(dates, day) - bisect_left(dates, held_from))
     z = event.get("z") if event else None
     p = event.get("p") if event else None
     baseline = event.get("reference") if event else None
@@ -247,7 +309,6 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
         baseline=_finite_or_none(baseline) if baseline is not None else None,
         acknowledged_by=facts.acknowledged_by, acknowledged_at=facts.acknowledged_at,
         acknowledgement_note=facts.acknowledged_note, cleared_on=facts.cleared_on,
-        drivers=tuple(driver_views), history=history if bucket == "new" else None,
         observations=_finite_or_none(n),
         reminder=facts.reminded_today,
         groups=_alert_groups(a_text, b_text, rule, inputs.groups),
