@@ -53,7 +53,8 @@ def _inputs(cards: int = SCREENFUL) -> tuple[DigestInputs, pd.DataFrame]:
         desk="Made-up Desk", as_of=day, generated_at=datetime(2026, 3, 5, 18, tzinfo=UTC),
         returns=returns, names={}, groups={}, rules={"crowding": rules[0]}, alerts=facts,
         monitored_pairs=rules[0].targets.pairs, measures=["rolling:21"], return_kind="log",
-        horizon=1, level=0.95, movers_days=5, gauge_days=21, history_days=60, cards=cards,
+        horizon=1, level=0.95, largest_changes_days=5,
+        group_average_days=21, history_days=60, cards=cards,
     )
     return inputs, returns
 
