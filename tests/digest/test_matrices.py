@@ -97,7 +97,7 @@ def _inputs(rule_tables: list[dict[str, object]]) -> DigestInputs:
         generated_at=dt.datetime(2026, 3, 5, 18, 30, tzinfo=dt.UTC), returns=returns,
         names={}, groups=GROUPS, rules={r.name: r for r in rules}, alerts=(),
         monitored_pairs=np.array([[0, 3]]), measures=["rolling:63"], return_kind="log",
-        horizon=1, level=0.95, movers_days=5, gauge_days=5, history_days=60,
+        horizon=1, level=0.95, largest_changes_days=5, group_average_days=5, history_days=60,
     )
 
 
