@@ -406,13 +406,17 @@ def cross_matrices(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str
             continue
         symbols = list(dict.fromkeys(rows + columns))
         block = matrix[:, [column[s] for s in symbols]]
-        last = list(matrix_on_pair_dates(block, measure, start=t, stop=t + 1,
-                                         level=inputs.level))[-1]
         position = {s: k for k, s in enumerate(symbols)}
-        values = np.array(last.value, dtype=np.float64)[
-            np.ix_([position[s] for s in rows], [position[s] for s in columns])]
-        same = np.array([[a == b for b in columns] for a in rows], dtype=bool)
-        values[same] = np.nan  # an instrument in both groups is not paired with itself
+        # Every row x column pair on its own dates, as the rules see it.
+        grid = np.array([(position[a], position[b]) for a in rows for b in columns],
+                        dtype=np.int64)
+        same = grid[:, 0] == grid[:, 1]
+        # A pair of an instrument with itself (one in both groups) is left out: NaN.
+        safe = np.where(same[:, None], [[0, 1 if len(symbols) > 1 else 0]], grid)
+        last = list(stream_on_pair_dates(block, measure, safe, start=t, stop=t + 1,
+                                         level=inputs.level))[-1]
+        values = np.where(same, np.nan, np.asarray(last.value, dtype=np.float64))
+        values = values.reshape(len(rows), len(columns))
         views.append(CrossMatrixView(left=left, right=right, rows=rows, columns=columns,
                                      matrix=values, rules=rules))
     return views
