@@ -14,6 +14,12 @@ matrix path when the set's pairs are dense), and the results are laid back on th
 rows. On a row where a pair has no return on one side, the pair keeps the value of its
 last own date (the window did not move); before its first value it is NaN with ``n = 0``.
 
+Stale (a side that did not move): decided on the window's own values, exactly (all its
+returns in the window equal, :func:`constant_sides`; for an EWMA all its returns so far),
+not from the engine's running sums, whose rounding cannot tell a tiny variance far from
+the history's mean from zero. Where the sums called a moving side flat, the value comes
+from :func:`window_value`, a direct two-pass computation on the window.
+
 ``scale=vol`` measures and the statistical rules read returns standardised by each
 instrument's own history (:func:`own_standardise`: the volatility recursion runs over the
 instrument's own returns, skipping the rows it has none), so they too are the same in any
@@ -32,6 +38,7 @@ import numpy.typing as npt
 from monitor._typing import Returns2D
 from monitor.engine.bands import DEFAULT_LEVEL, check_level
 from monitor.engine.layout import BoolArray, FloatArray, IntArray
+from monitor.engine.rank import average_ranks
 from monitor.engine.scaling import standardise
 from monitor.engine.spec import Measure, as_measure
 from monitor.engine.stream import DayResult, as_returns, stream
@@ -126,6 +133,70 @@ def _plain(measure: Measure) -> Measure:
     return dataclasses.replace(measure, scale="none") if measure.scale == "vol" else measure
 
 
+def constant_sides(block: Returns2D, measure: Measure) -> BoolArray:
+    """(R, C): where each column's valid values in the measure's window ending on each row
+    are all equal (largest == smallest), an exact test on the window's own values. For an
+    EWMA the window is every row so far (its weights never reach zero). False before a
+    column's first valid value; a zero-mean EWMA is constant only on exact zeros."""
+    values = np.asarray(block, dtype=np.float64)
+    if not measure.centred:  # a zero-mean EWMA: only a side of exact zeros has no scale
+        values = np.where(np.isnan(values), np.nan, values != 0.0)
+        return np.fmax.accumulate(values, axis=0) == 0.0
+    if measure.kind == "ewma" or measure.window is None:
+        high = np.fmax.accumulate(values, axis=0)
+        low = np.fmin.accumulate(values, axis=0)
+        return high == low
+    window = int(measure.window)
+    if values.shape[0] == 0:
+        return np.zeros(values.shape, dtype=bool)
+    padded = np.vstack([np.full((window - 1, values.shape[1]), np.nan), values])
+    high = _sliding_reduce(np.fmax, padded, window)
+    low = _sliding_reduce(np.fmin, padded, window)
+    return high == low
+
+
+def _sliding_reduce(reduce: np.ufunc, block: Returns2D, window: int) -> Returns2D:
+    """``reduce`` over every run of ``window`` rows (doubling: log2(W) passes)."""
+    acc = block
+    span = 1
+    while 2 * span <= window:
+        acc = reduce(acc[:-span], acc[span:])
+        span *= 2
+    rest = window - span
+    return reduce(acc[: acc.shape[0] - rest], acc[rest:])
+
+
+def window_value(x: FloatArray, y: FloatArray, measure: Measure) -> float:
+    """The measure's value on the last day of ``x``, ``y`` (the rows so far, last = today)
+    by a direct two-pass computation on the window's own values: the slow reference the
+    engine's sums are checked against, used where the sums cannot tell a small variance
+    from rounding."""
+    both = np.isfinite(x) & np.isfinite(y)
+    if measure.kind != "ewma":
+        window = int(measure.window or len(x))
+        keep = both[-window:]
+        a, b = x[-window:][keep], y[-window:][keep]
+        if measure.kind == "rank":
+            a, b = average_ranks(a), average_ranks(b)
+        weights = np.ones(len(a))
+    else:
+        lam = float(measure.lam or 0.0)
+        ages = np.cumsum(np.ones(len(x)))[::-1] - 1.0  # 0 for today
+        a, b, weights = x[both], y[both], lam ** ages[both]
+    if len(a) < max(2, measure.min_count):
+        return float("nan")
+    total = weights.sum()
+    if measure.kind == "ewma" and not measure.centred:
+        ma = mb = 0.0
+    else:
+        ma, mb = float(weights @ a / total), float(weights @ b / total)
+    da, db = a - ma, b - mb
+    var_a, var_b = float(weights @ (da * da)), float(weights @ (db * db))
+    if var_a <= 0.0 or var_b <= 0.0:
+        return float("nan")
+    return float(np.clip(weights @ (da * db) / np.sqrt(var_a * var_b), -1.0, 1.0))
+
+
 class _SetStream:
     """One pair set's engine results, stepped along the union's rows."""
 
@@ -142,12 +213,16 @@ class _SetStream:
         self.stop = int(np.searchsorted(part.rows, stop - 1, side="right"))
         self.results: Iterator[DayResult] | None = None
         self.flat: IntArray | None = None
+        self.spec = spec
+        self.block: Returns2D = np.empty((0, len(part.columns)))
+        self.constant: BoolArray = np.empty((0, len(part.columns)), dtype=bool)
         if self.next < self.stop:
-            block = data[np.ix_(part.rows[:self.stop], part.columns)]
+            self.block = data[np.ix_(part.rows[:self.stop], part.columns)]
+            self.constant = constant_sides(self.block, spec)
             size_c = len(part.columns)
             if part.dense:
                 self.flat = part.local[:, 0] * size_c + part.local[:, 1]
-            self.results = stream(block, spec, pairs=None if part.dense else part.local,
+            self.results = stream(self.block, spec, pairs=None if part.dense else part.local,
                                   start=self.next, stop=self.stop, level=level, chunk=chunk)
 
     def advance(self, t: int) -> None:
@@ -157,12 +232,32 @@ class _SetStream:
             assert self.results is not None
             day = next(self.results)
             if self.flat is None:
-                self.value, self.n, self.stale = day.value, day.n, day.stale
+                value, n, stale = day.value, day.n, day.stale
             else:
-                self.value = np.take(np.ravel(day.value), self.flat)
-                self.n = np.take(np.ravel(day.n), self.flat)
-                self.stale = np.take(np.ravel(day.stale), self.flat)
+                value = np.take(np.ravel(day.value), self.flat)
+                n = np.take(np.ravel(day.n), self.flat)
+                stale = np.take(np.ravel(day.stale), self.flat)
+            self.value, self.n, self.stale = self._exact_stale(self.next, value, n, stale)
             self.next += 1
+
+    def _exact_stale(self, k: int, value: FloatArray, n: FloatArray, stale: BoolArray
+                     ) -> tuple[FloatArray, FloatArray, BoolArray]:
+        """The stale flag from the window's own values (:func:`constant_sides`), not from
+        the engine's sums: a pair the sums call flat whose returns do move gets its value
+        from :func:`window_value`; one whose side is constant gets NaN."""
+        local = self.part.local
+        side = self.constant[k]
+        with np.errstate(invalid="ignore"):
+            enough = n >= self.spec.min_count
+        exact = (side[local[:, 0]] | side[local[:, 1]]) & enough
+        if np.array_equal(exact, stale):
+            return value, n, stale
+        value = np.array(value)
+        value[exact] = np.nan
+        for p in np.flatnonzero(stale & ~exact):
+            value[p] = window_value(self.block[:k + 1, local[p, 0]],
+                                    self.block[:k + 1, local[p, 1]], self.spec)
+        return value, n, exact
 
 
 def stream_on_pair_dates(

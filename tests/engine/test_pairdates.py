@@ -153,3 +153,56 @@ def test_a_return_spanning_a_holiday_pulls_r_towards_zero_by_about_r_over_2n(
         shifts.append(holiday - open_days)
     mean_shift = float(np.mean(np.concatenate(shifts)))
     assert mean_shift == pytest.approx(-rho / (2 * n), rel=0.15)
+
+
+def _drifting(rows: int = 1500) -> np.ndarray:
+    """A side whose returns are a drift plus noise a million times smaller, the drift
+    changing on row 500 (so the window's mean is far from the history's), beside an
+    ordinary side."""
+    rng = np.random.default_rng(3)
+    z = rng.standard_normal((rows, 2))
+    x = np.where(np.arange(rows) < 500, 0.05, 0.0002) + 1e-8 * z[:, 0]
+    y = 0.01 * (0.6 * z[:, 0] + 0.8 * z[:, 1])
+    return np.column_stack([x, y])
+
+
+def test_a_drifting_side_with_tiny_noise_is_never_flat() -> None:
+    """References: numpy.corrcoef and scipy.stats.spearmanr of each window (two-pass),
+    pandas ewm(halflife=21).corr for the EWMA."""
+    values = _drifting()
+    x, y = values[:, 0], values[:, 1]
+    pair = np.array([[0, 1]])
+    rows = range(62, len(values))
+    for measure, reference in (
+        ("rolling:63", [np.corrcoef(x[t - 62:t + 1], y[t - 62:t + 1])[0, 1] for t in rows]),
+        ("rank:63", [stats.spearmanr(x[t - 62:t + 1], y[t - 62:t + 1]).statistic
+                     for t in rows]),
+    ):
+        days = list(stream_on_pair_dates(values, measure, pair))[62:]
+        assert not any(d.stale[0] for d in days), measure
+        got = np.array([d.value[0] for d in days])
+        np.testing.assert_allclose(got, reference, rtol=0, atol=1e-12, err_msg=measure)
+    days = list(stream_on_pair_dates(values, "ewma:hl=21,min=1", pair))
+    assert days[0].stale[0]  # one return: no variance yet
+    assert not any(d.stale[0] for d in days[1:])
+    got = np.array([d.value[0] for d in days])
+    expected = pd.Series(x).ewm(halflife=21).corr(pd.Series(y)).to_numpy()
+    np.testing.assert_allclose(got[30:], expected[30:], rtol=0, atol=1e-8)
+
+
+def test_exactly_stale_closes_are_flat_until_a_move_enters_the_window() -> None:
+    values = _drifting(400)[:, ::-1].copy()  # an ordinary side, then the one that stops
+    values[:, 1] = 0.01 * np.random.default_rng(4).standard_normal(400)
+    values[200:300, 1] = 0.0  # the close did not change for 100 days
+    pair = np.array([[0, 1]])
+    for measure in ("rolling:40", "rank:40"):
+        days = list(stream_on_pair_dates(values, measure, pair))
+        stale = np.array([d.stale[0] for d in days])
+        value = np.array([d.value[0] for d in days])
+        inside = np.arange(239, 300)  # windows wholly inside the flat stretch
+        assert stale[inside].all() and np.isnan(value[inside]).all(), measure
+        assert not stale[:239].any() and not stale[300:].any(), measure
+        assert np.isfinite(value[300:]).all()
+    days = list(stream_on_pair_dates(values, "ewma:hl=10", pair))
+    # an EWMA keeps a value through a flat stretch after moves (its weights never vanish)
+    assert not any(d.stale[0] for d in days)
