@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
+from monitor.config_tables import summarise_problems
 from monitor.errors import ComoveError, ConfigError
 
 UTC = dt.UTC
@@ -254,9 +255,7 @@ def parse_schedule(raw: Mapping[str, Any], *, desk_timezone: str, base_dir: Path
         if code is not None:
             holidays = holidays | exchange_holidays(code, days)
     if problems:
-        first = problems[0]
-        more = f" (and {len(problems) - 1} more: `comove check` lists them all)"
-        raise ConfigError(first + (more if len(problems) > 1 else ""), problems)
+        raise ConfigError(summarise_problems(problems), problems)
     return Schedule(days=days, time=time, timezone=timezone, holidays=frozenset(holidays))
 
 

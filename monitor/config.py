@@ -11,7 +11,6 @@ Where the file is: `--config PATH`, else `$COMOVE_CONFIG`, else `./comove.toml`.
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import os
 import re
 import tomllib
@@ -22,8 +21,8 @@ from typing import Any, get_args
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from monitor._typing import ReturnKind, SmtpSecurity
+from monitor.config_tables import section_problems, suggest_key, summarise_problems, type_name
 from monitor.errors import ConfigError
-from monitor.renamed import OLD_SETTING_KEYS, old_name_hint
 from monitor.symbols import symbol_problem
 
 DEFAULT_FILE = "comove.toml"
@@ -395,110 +394,6 @@ def resolve_store_url(url: str, base_dir: Path) -> str:
     return f"{prefix}{absolute}{sep}{query}"
 
 
-def _type_name(expected: type | tuple[type, ...]) -> str:
-    names = {str: "a string", int: "an integer", float: "a number", bool: "true or false",
-             list: "a list", tuple: "a list"}
-    if isinstance(expected, tuple):
-        if set(expected) == {int, float}:
-            return "a number"
-        return " or ".join(names.get(t, t.__name__) for t in expected)
-    return names.get(expected, expected.__name__)
-
-
-def _type_ok(value: Any, expected: type | tuple[type, ...]) -> bool:
-    kinds = expected if isinstance(expected, tuple) else (expected,)
-    if isinstance(value, bool) and bool not in kinds:
-        return False  # TOML true is not a number here
-    return isinstance(value, kinds)
-
-
-def _suggest(key: str, valid: list[str]) -> str:
-    near = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
-    if near:
-        return f"did you mean '{near[0]}'?"
-    return "valid keys: " + ", ".join(sorted(valid))
-
-
-def build_section(cls: type, raw: Any, path: str) -> Any:
-    """Validate one table against its dataclass; every error names the key path and value.
-
-    Raises
-    ------
-    ConfigError
-        Naming the first problem; `problems` lists every problem of the table.
-    """
-    built, problems = _section_and_problems(cls, raw, path)
-    if problems:
-        raise ConfigError(_summary(problems), problems)
-    return built
-
-
-def _section_and_problems(cls: type, raw: Any, path: str) -> tuple[Any, list[str]]:
-    """The section object (None when any key is wrong) and every problem of the table."""
-    if not isinstance(raw, dict):
-        return None, [f"{path}: expected a table, got {raw!r}"]
-    fields = {f.name: f for f in dataclasses.fields(cls)}
-    problems: list[str] = []
-    if "password" in raw and "password_env" in fields:
-        problems.append(
-            f"{path}.password: a password in the settings file is refused; put it in an "
-            f"environment variable and name that variable in {path}.password_env"
-        )
-    for key in raw:
-        if key not in fields and key != "password":
-            if OLD_SETTING_KEYS.get(key) in fields:
-                problems.append(f"{path}.{key}: {old_name_hint(key, OLD_SETTING_KEYS[key])}")
-            else:
-                problems.append(f"{path}.{key}: unknown key; {_suggest(key, list(fields))}")
-    values: dict[str, Any] = {}
-    for fld in fields.values():
-        problem = _read_key(fld, raw, path, values)
-        if problem:
-            problems.append(problem)
-    if problems:
-        return None, problems
-    return cls(**values), []
-
-
-def _read_key(fld: dataclasses.Field[Any], raw: dict[str, Any], path: str,
-              values: dict[str, Any]) -> str | None:
-    """Check one key of a table into `values`; return its problem, if any."""
-    name, meta = fld.name, fld.metadata
-    if name not in raw:
-        if fld.default is dataclasses.MISSING and fld.default_factory is dataclasses.MISSING:
-            return f"{path}.{name}: required key is missing ({meta['help']})"
-        return None
-    value = raw[name]
-    expected = meta["type"]
-    if not _type_ok(value, expected):
-        return f"{path}.{name}: {value!r} is not {_type_name(expected)}"
-    if isinstance(value, list):
-        item = meta.get("item")
-        for i, element in enumerate(value):
-            if item is not None and not _type_ok(element, item):
-                return f"{path}.{name}[{i}]: {element!r} is not {_type_name(item)}"
-        value = tuple(value)
-    if meta["choices"] and value not in meta["choices"]:
-        return f"{path}.{name}: {value!r} is not one of " + ", ".join(meta["choices"])
-    check = meta["check"]
-    if check is not None:
-        problem = check(value)
-        if problem:
-            return f"{path}.{name}: {raw[name]!r} is not {problem}"
-    values[name] = value
-    return None
-
-
-MORE_PROBLEMS = "(and {count} more: `comove check` lists them all)"
-"""Appended to the first problem when the file has several."""
-
-
-def _summary(problems: list[str]) -> str:
-    if len(problems) == 1:
-        return problems[0]
-    return f"{problems[0]} " + MORE_PROBLEMS.format(count=len(problems) - 1)
-
-
 @dataclass(frozen=True)
 class SettingsCheck:
     """The settings as far as they could be resolved, and every problem found.
@@ -524,7 +419,7 @@ def check_settings(data: Mapping[str, Any], *, path: Path | None = None,
     for key in data:
         if key not in SECTIONS:
             problems.append(
-                f"{where}: [{key}]: unknown section; {_suggest(key, list(SECTIONS))}")
+                f"{where}: [{key}]: unknown section; {suggest_key(key, list(SECTIONS))}")
     sections: dict[str, Any] = {}
     for name, section in SECTIONS.items():
         raw = data.get(name, [] if section.array else {})
@@ -540,7 +435,7 @@ def check_settings(data: Mapping[str, Any], *, path: Path | None = None,
                 continue
             items, failed = [], False
             for i, table in enumerate(raw):
-                built, found = _section_and_problems(section.cls, table, f"{name}[{i}]")
+                built, found = section_problems(section.cls, table, f"{name}[{i}]")
                 problems.extend(found)
                 failed = failed or bool(found)
                 items.append(built)
@@ -552,7 +447,7 @@ def check_settings(data: Mapping[str, Any], *, path: Path | None = None,
             else:
                 problems.append(f"{where}: [{name}]: expected a table, got {raw!r}")
         else:
-            built, found = _section_and_problems(section.cls, raw, name)
+            built, found = section_problems(section.cls, raw, name)
             problems.extend(found)
             if built is not None:
                 sections[name] = built
@@ -577,7 +472,7 @@ def parse_settings(data: Mapping[str, Any], *, path: Path | None = None,
     """
     checked = check_settings(data, path=path, base_dir=base_dir)
     if checked.settings is None:
-        raise ConfigError(_summary(list(checked.problems)), list(checked.problems))
+        raise ConfigError(summarise_problems(list(checked.problems)), list(checked.problems))
     return checked.settings
 
 
@@ -695,7 +590,7 @@ def documented_keys() -> list[KeyDoc]:
                 default = repr(list(fld.default_factory()))
             else:
                 default = "(required)"
-            kind = _type_name(meta["type"])
+            kind = type_name(meta["type"])
             if meta["choices"]:
                 kind = " | ".join(meta["choices"])
             docs.append(KeyDoc(f"{prefix} {fld.name}", kind, default, meta["help"]))
