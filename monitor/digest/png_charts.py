@@ -31,7 +31,7 @@ from matplotlib.colors import LinearSegmentedColormap
 from matplotlib.figure import Figure
 from PIL import Image
 
-from monitor import chart_axes
+from monitor import chart_axes, palette
 from monitor._typing import CorrMatrix, Float1D
 
 DPI = 200
@@ -39,20 +39,21 @@ DPI = 200
 DISPLAY_DPI = 100
 """Pixels per inch the HTML displays them at: the files carry 2x the displayed pixels."""
 
-INK = "#1f2933"
-MUTED = "#616e7c"
-GRID = "#d9dee3"
-LINE = "#243b53"
-BAND = "#bcccdc"
-LEVEL = "#8d2b0b"
-CLEAR = "#486581"
-START = "#7b8794"
+# Colours from comove's own palette (monitor/palette.py).
+INK = palette.INK
+MUTED = palette.MUTED
+GRID = palette.GRID
+LINE = palette.LINE
+BAND = palette.BAND
+LEVEL = palette.CRITICAL
+CLEAR = palette.INFO
+START = palette.START
 
-# A diverging palette of our own: slate blue for negative, warm clay for positive,
-# near-white at zero, so the sign reads even in greyscale print (darker = stronger).
+# The correlation map: slate blue for negative, clay for positive, near-white at zero, so
+# the sign reads even in greyscale print (darker = stronger); missing values are paper.
 CORRELATION_CMAP = LinearSegmentedColormap.from_list(
-    "comove_correlation", ["#1d3557", "#7d9cc0", "#f4f4f2", "#d39b74", "#7a2e12"]
-).with_extremes(bad="#ffffff")
+    "comove_correlation", list(palette.CORRELATION_STOPS)
+).with_extremes(bad=palette.PAPER)
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -356,7 +357,7 @@ LABELS_MAX = 40
 
 def _cell_text_colour(value: float) -> str:
     # Dark ends of the palette get white digits, the pale middle gets ink.
-    return "#ffffff" if abs(value) >= 0.55 else INK
+    return palette.PAPER if abs(value) >= 0.55 else INK
 
 
 def matrix_figure(

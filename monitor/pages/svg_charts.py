@@ -43,7 +43,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 
-from monitor import chart_axes
+from monitor import chart_axes, palette
 from monitor._typing import Float1D
 
 WIDTH_IN = 7.2
@@ -60,13 +60,14 @@ CHART_HEIGHT = round(HEIGHT_IN * CSS_PX_PER_IN)
 SVG_HASHSALT = "comove-pages"
 """Fixed salt of the ids matplotlib writes into the SVG, so equal charts give equal bytes."""
 
-INK = "#1f2933"
-MUTED = "#616e7c"
-GRID = "#d9dee3"
-LINE = "#243b53"
-BAND = "#bcccdc"
-SPAN = "#e7c9a9"
-LEVEL = "#8d2b0b"
+# Colours from comove's own palette (monitor/palette.py).
+INK = palette.INK
+MUTED = palette.MUTED
+GRID = palette.GRID
+LINE = palette.LINE
+BAND = palette.BAND
+SPAN = palette.SPAN
+LEVEL = palette.CRITICAL
 
 HISTORY_CHART_KEY = (
     "Solid line: the value; blue-grey band: its confidence band; warm shading: days an "
