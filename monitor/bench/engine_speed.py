@@ -85,17 +85,24 @@ def _sessions(first_year: int) -> tuple[pd.DatetimeIndex, tuple[pd.DatetimeIndex
     return union, own
 
 
-def market_gaps(rows: int, columns: int, seed: int = 20260101) -> BoolArray:
-    """(rows, columns) True where a return is missing: the instrument's market is closed
-    on that day of the union of the five markets' sessions (the last ``rows`` of them), or
-    the close is missing at random (:data:`RANDOM_GAP_SHARE`)."""
+def market_days(
+    rows: int, columns: int, seed: int = 20260101
+) -> tuple[pd.DatetimeIndex, BoolArray]:
+    """The last ``rows`` days of the union of the five markets' sessions, and (rows,
+    columns) True where an instrument has no value: its market is closed that day, or the
+    value is missing at random (:data:`RANDOM_GAP_SHARE`)."""
     years = rows // 240 + 2
     union, own = _sessions(int(LAST_SESSION[:4]) - years)
     dates = union[-rows:]
     closed = np.column_stack([~dates.isin(sessions) for sessions in own])
     missing = closed[:, np.arange(columns) % len(MARKETS)]
     rng = np.random.default_rng(seed + 1)
-    return np.asarray(missing | (rng.random((rows, columns)) < RANDOM_GAP_SHARE))
+    return dates, np.asarray(missing | (rng.random((rows, columns)) < RANDOM_GAP_SHARE))
+
+
+def market_gaps(rows: int, columns: int, seed: int = 20260101) -> BoolArray:
+    """(rows, columns) True where a return is missing (see :func:`market_days`)."""
+    return market_days(rows, columns, seed)[1]
 
 
 def desk_returns(rows: int, columns: int, *, gaps: bool, seed: int = 20260101) -> Returns2D:
@@ -163,21 +170,25 @@ POLARS_BATCH = 2000
 
 def _polars_batches(returns: Returns2D, spec: str) -> Any:
     """Yield ``(pairs, values)``: polars' correlation of every pair (i < j), a batch at a
-    time, values (T, batch). Both sides are masked to the pair's common days, so that polars
-    (whose rolling and EWMA means skip each series' own nulls) works on the same days as
-    pandas and the engine."""
+    time, values (T, batch). With gaps, both sides are masked to the pair's common days, so
+    that polars (whose rolling and EWMA means skip each series' own nulls) works on the same
+    days as pandas and the engine."""
     import polars as pl
 
     rows, columns = returns.shape
     frame = pl.DataFrame({f"c{k}": returns[:, k] for k in range(columns)}, nan_to_null=True)
     left, right = np.triu_indices(columns, 1)
+    missing = np.isnan(returns)
+    # masking is needed only where some instruments lack a return that others have
+    mask = bool((missing.any(axis=1) & ~missing.all(axis=1)).any())
     for lo in range(0, left.size, POLARS_BATCH):
         pairs = (left[lo : lo + POLARS_BATCH], right[lo : lo + POLARS_BATCH])
         exprs = []
         for i, j in zip(*pairs, strict=True):
             x, y = pl.col(f"c{i}"), pl.col(f"c{j}")
-            both = x.is_not_null() & y.is_not_null()
-            x, y = pl.when(both).then(x), pl.when(both).then(y)
+            if mask:
+                both = x.is_not_null() & y.is_not_null()
+                x, y = pl.when(both).then(x), pl.when(both).then(y)
             if spec.startswith("rolling"):
                 window, minimum = _window(spec)
                 exprs.append(
