@@ -42,9 +42,13 @@ def setting(
     check: Check | None = None,
     choices: tuple[str, ...] | None = None,
     item: type | None = None,
+    secret: bool = False,
 ) -> Any:
-    """Declare one key: its default (`_REQUIRED` for none), help text, type and check."""
-    meta = {"help": help, "type": kind, "check": check, "choices": choices, "item": item}
+    """Declare one key: its default (`_REQUIRED` for none), help text, type and check.
+    A `secret` key's value is never repeated in a message (someone may have typed the
+    password itself into it)."""
+    meta = {"help": help, "type": kind, "check": check, "choices": choices, "item": item,
+            "secret": secret}
     if isinstance(default, list | tuple):
         frozen = tuple(default)
         return field(default_factory=lambda: frozen, metadata=meta)
@@ -247,15 +251,28 @@ def _env_name(value: Any) -> str | None:
     return "the name of an environment variable (letters, digits, '_')"
 
 
+def _single_line_address(value: Any) -> str | None:
+    """An address is one line: a line break in it would add a header to the email."""
+    if not str(value).strip() or "\n" in str(value) or "\r" in str(value):
+        return "a single-line address"
+    return None
+
+
+def _single_line_addresses(value: Any) -> str | None:
+    bad = [address for address in value if _single_line_address(address)]
+    return f"a list of single-line addresses ({bad[0]!r} is not)" if bad else None
+
+
 @dataclass(frozen=True)
 class DigestSettings:
     """[digest]: the evening email and where rendered digests are kept."""
 
     recipients: tuple[str, ...] = setting(
         [], "Addresses the digest is sent to; empty: the digest is rendered but not sent.",
-        kind=list, item=str,
+        kind=list, item=str, check=_single_line_addresses,
     )
-    sender: str = setting("comove@localhost", "From address of the digest.")
+    sender: str = setting("comove@localhost", "From address of the digest.",
+                          check=_single_line_address)
     smtp_host: str = setting("localhost", "Host name of the SMTP server that relays the digest.")
     smtp_port: int = setting(587, "SMTP port (587 for starttls, 465 for tls).", kind=int,
                              check=_port)
@@ -264,7 +281,7 @@ class DigestSettings:
     username: str = setting("", "SMTP login name; empty: no login.")
     password_env: str = setting(
         "", "Name of the environment variable that holds the SMTP password (a password in "
-        "this file is refused).", check=_env_name,
+        "this file is refused).", check=_env_name, secret=True,
     )
     ca_file: str = setting(
         "", "PEM file of certificate authorities to trust for the SMTP server (a private "

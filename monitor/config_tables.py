@@ -103,6 +103,9 @@ def _read_key(fld: dataclasses.Field[Any], raw: dict[str, Any], path: str,
     check = meta["check"]
     if check is not None:
         problem = check(value)
+        if problem and meta.get("secret"):
+            return (f"{path}.{name}: the value given is not {problem}; it is not shown here "
+                    "in case it is the password itself")
         if problem:
             return f"{path}.{name}: {raw[name]!r} is not {problem}"
     values[name] = value

@@ -84,12 +84,11 @@ def build_message(
     ConfigError
         Empty or multi-line sender or recipients, or a naive `date`.
     """
-    addresses = [sender, *recipients]
     if not recipients:
         raise ConfigError("recipients: no address given")
-    for address in addresses:
+    for key, address in [("sender", sender), *(("recipients", r) for r in recipients)]:
         if not address.strip() or "\n" in address or "\r" in address:
-            raise ConfigError(f"recipients: {address!r} is not a single-line address")
+            raise ConfigError(f"{key}: {address!r} is not a single-line address")
     if date.tzinfo is None or date.utcoffset() is None:
         raise ConfigError(f"date: {date.isoformat()} has no time zone")
     message = mime_body(rendered)
