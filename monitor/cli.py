@@ -320,9 +320,10 @@ def _backfill(args: argparse.Namespace) -> int:
     store = open_settings_store(settings)
     # COMOVE_COMMIT_DAYS commits more often (the tests kill a backfill between commits).
     commit_days = int(os.environ.get("COMOVE_COMMIT_DAYS", "60"))
+    progress = None if getattr(args, "quiet", False) else ProgressLine()  # -q: no progress
     with stop_on_interrupt() as stop:
         report = backfill(store, settings, args.start, args.end, rule_names=args.rule,
-                          progress=ProgressLine(), force=args.force, commit_days=commit_days,
+                          progress=progress, force=args.force, commit_days=commit_days,
                           should_stop=stop.is_set)
     if report.already_done:
         print(f"already evaluated through {report.resumed_from} with these rules and closes; "

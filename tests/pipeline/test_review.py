@@ -293,3 +293,15 @@ def test_pages_show_the_mutes_on_the_index_and_on_the_muted_pages(
     # the page's history shows alerts it kept from the digest.
     assert shown == [(str(rule_mute), "active"), (str(pair_mute), "coming"),
                      (str(old), "ended")]
+
+
+def test_quiet_backfill_prints_no_progress(
+    desk: tuple[Store, Settings], capsys: pytest.CaptureFixture[str]
+) -> None:
+    _, settings = desk
+    config = str(settings.path)
+    assert main(["-q", "backfill", "--no-pages", "--config", config]) == 0
+    quiet = capsys.readouterr()
+    assert "progress:" not in quiet.err and "evaluated " in quiet.out
+    assert main(["backfill", "--no-pages", "--force", "--config", config]) == 0
+    assert "progress: " in capsys.readouterr().err
