@@ -137,10 +137,12 @@ def build_context(inputs: DigestInputs) -> DigestContext:
     for facts in inputs.alerts:
         if not facts.announced:
             continue
-        if facts.opened_on in (day, inputs.as_of) and facts.state != "retracted":
-            bucket = "new"
-        elif facts.state == "cleared" and facts.cleared_on == day:
+        if facts.state == "cleared" and facts.cleared_on in (day, inputs.as_of):
+            # Cleared this evening: listed as cleared, never as new, even when it opened
+            # (and was acknowledged) the same day.
             bucket = "cleared"
+        elif facts.opened_on in (day, inputs.as_of) and facts.state != "retracted":
+            bucket = "new"
         elif facts.state == "open" and facts.acknowledged_by:
             bucket = "acknowledged"
         elif facts.state == "open":
@@ -177,6 +179,7 @@ def build_context(inputs: DigestInputs) -> DigestContext:
         movers=tuple(movers), group_averages=tuple(group_averages),
         data_quality=tuple(inputs.data_issues), heatmaps=tuple(heatmaps),
         cross_matrices=tuple(cross_matrices(inputs, matrix, column, t)),
+        run_date=inputs.as_of,
     )
 
 

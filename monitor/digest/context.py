@@ -491,6 +491,9 @@ class DigestContext:
         Measures, observation counts, return kind, horizon, confidence level.
     version : str
         comove's version.
+    run_date : date or None
+        The day the evening run was for, which heads the digest; later than `as_of` when
+        that day brought no closes (the numbers are then of `as_of`). None: `as_of`.
     pages_url : str
         Address of the history pages' folder (ending in "/"), when the desk publishes
         them somewhere a reader can open; "" when unknown, and a summarised list then
@@ -515,12 +518,18 @@ class DigestContext:
     heatmaps: Sequence[HeatmapView] = ()
     pages_url: str = ""
     cross_matrices: Sequence[CrossMatrixView] = ()
+    run_date: date | None = None
 
     def __post_init__(self) -> None:
         tuple_fields(
             self, "new_alerts", "continuing", "acknowledged", "cleared", "movers",
             "group_averages", "data_quality", "heatmaps", "cross_matrices",
         )
+
+    @property
+    def run_day(self) -> date:
+        """The day heading the digest: the run's date (`run_date`), else `as_of`."""
+        return self.run_date or self.as_of
 
     @property
     def open_count(self) -> int:

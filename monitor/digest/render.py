@@ -19,7 +19,7 @@ from monitor.digest.flood import SCREENFUL, summarise
 from monitor.digest.footer import cautions
 from monitor.digest.order import alert_sort_key, issue_sort_key, mover_sort_key
 from monitor.digest.rendered import RenderedDigest
-from monitor.templating import format_date, make_environment
+from monitor.templating import MINUS, format_date, make_environment
 
 
 def _one_line(text: str) -> str:
@@ -30,7 +30,7 @@ def _one_line(text: str) -> str:
 def digest_subject(ctx: DigestContext) -> str:
     """Subject line, e.g. "Kelvara Rates: correlation digest 2026-03-05 — 2 new, ..."."""
     subject = (
-        f"{ctx.desk}: correlation digest {format_date(ctx.as_of)} \u2014 "
+        f"{ctx.desk}: correlation digest {format_date(ctx.run_day)} \u2014 "
         f"{len(ctx.new_alerts)} new, {ctx.open_count} still open, "
         f"{len(ctx.cleared)} cleared"
     )
@@ -97,7 +97,9 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
     html_email = html_template.render(
         common, image_src={k: f"cid:{v.cid}" for k, v in by_key.items()}
     )
-    text = environment.get_template("digest.txt").render(common)
+    # The text part is what gets pasted into spreadsheets: a typographic minus would arrive
+    # as text there, so it is written as the ASCII hyphen-minus.
+    text = environment.get_template("digest.txt").render(common).replace(MINUS, "-")
     return RenderedDigest(
         subject=common["subject"],
         html_for_files=html_files,

@@ -131,15 +131,18 @@ class DailyReport:
     evaluation: EvaluationReport | None = None
     digest: DigestOutcome | None = None
     feed_problem: str = ""
+    feed_event: str = ""
+    """What the run did to the data-feed alert: "opened", "continuing", "cleared" or ""."""
     pages: Any = None
     message: str = ""
     digest_error: str = ""
 
 
 def _feed_alert(store: Store, settings: Settings, as_of: dt.date, last_close: dt.date | None,
-                ) -> str:
+                ) -> tuple[str, str]:
     """Open (or keep open) the data-feed alert when `as_of` has no closes; clear it when
-    closes are there again. Returns the problem text, or '' when the feed is fine."""
+    closes are there again. Returns the problem text ('' when the feed is fine) and the
+    event written ("opened", "continuing", "cleared" or "" for none)."""
     with store.begin() as conn:
         open_alerts = [a for a in alerts_store.list_alerts(conn, open_only=True, rule=FEED_RULE)]
         if last_close is not None and last_close >= as_of:
@@ -147,7 +150,7 @@ def _feed_alert(store: Store, settings: Settings, as_of: dt.date, last_close: dt
                 alerts_store.write_events(conn, [_feed_event(alert.opened_on, as_of, "cleared",
                                                              last_close)])
                 alerts_store.refresh_states(conn, [alert.id])
-            return ""
+            return "", "cleared" if open_alerts else ""
         problem = (f"no new closes for {as_of} by run time; latest closes are from "
                    f"{last_close or 'never'}")
         opened = open_alerts[0].opened_on if open_alerts else as_of
@@ -155,7 +158,7 @@ def _feed_alert(store: Store, settings: Settings, as_of: dt.date, last_close: dt
         alerts_store.delete_events_on(conn, [FEED_RULE], as_of)
         ids = alerts_store.write_events(conn, [_feed_event(opened, as_of, event, last_close)])
         alerts_store.refresh_states(conn, ids)
-    return problem
+    return problem, event
 
 
 def market_closed_reason(settings: Settings, day: dt.date) -> str:
@@ -229,7 +232,8 @@ def run_daily(
             if closed and (last is None or last < as_of):
                 LOG.info("no data-feed check for %s: %s", as_of, closed)
             else:
-                report.feed_problem = _feed_alert(store, settings, as_of, last)
+                report.feed_problem, report.feed_event = _feed_alert(store, settings, as_of,
+                                                                     last)
             if last is not None:
                 report.evaluation = evaluate_range(store, settings, None, as_of, kind="evaluation",
                                                    now=lambda: dt.datetime.now(dt.UTC))
@@ -267,6 +271,8 @@ def _daily_counts(report: DailyReport) -> dict[str, object]:
         counts["digest"] = report.digest.status
     if report.feed_problem:
         counts["feed_problem"] = report.feed_problem
+    if report.feed_event:
+        counts["feed_alert"] = report.feed_event
     return counts
 
 
@@ -379,9 +385,13 @@ def _describe_daily(report: DailyReport) -> str:
                      f"{len(report.collected.rejected)} rejected")
     if report.feed_problem:
         parts.append(f"DATA: {report.feed_problem}")
-    if report.evaluation is not None:
-        e = report.evaluation
-        parts.append(f"{e.opened} opened, {e.cleared} cleared")
+    if report.evaluation is not None or report.feed_event:
+        # The data-feed alert is an alert of the run like any other: it counts.
+        opened = (report.evaluation.opened if report.evaluation is not None else 0) + (
+            report.feed_event == "opened")
+        cleared = (report.evaluation.cleared if report.evaluation is not None else 0) + (
+            report.feed_event == "cleared")
+        parts.append(f"{opened} opened, {cleared} cleared")
     if report.digest is not None:
         parts.append(f"digest {report.digest.status}: {report.digest.folder}")
         if report.digest.status == "maybe sent":

@@ -145,8 +145,8 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
             id=a.id, rule=a.rule, target=a.target, opened_on=a.opened_on,
             first_breach_on=a.first_breach_on,
             # As the evening of `day` saw it, whatever happened to the alert later.
-            state="cleared" if a.cleared_on == day else "open",
-            cleared_on=a.cleared_on if a.cleared_on == day else None,
+            state="cleared" if a.cleared_on in (day, as_of) else "open",
+            cleared_on=a.cleared_on if a.cleared_on in (day, as_of) else None,
             severity=a.severity, rule_kind=a.rule_kind,
             announced=bool(by_alert.get(a.id, {}).get("announce", a.announced)),
             acknowledged_by=_acked_by(a, day), acknowledged_at=a.acknowledged_at

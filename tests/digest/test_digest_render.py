@@ -482,14 +482,24 @@ def test_text_part_carries_the_same_alert_facts(rendered: RenderedDigest) -> Non
     # Drivers: five lines per new alert with both returns.
     driver_lines = re.findall(r"^    2026-\d\d-\d\d +\S+ % +\S+ % +\S+$", text, flags=re.M)
     assert len(driver_lines) == 5 * len(ctx.new_alerts)
-    assert "0.70 %      \u22121.40 %" in text
+    assert "0.70 %      -1.40 %" in text
+
+
+def test_text_part_writes_the_ascii_minus_a_spreadsheet_reads_and_html_keeps_the_sign(
+    rendered: RenderedDigest,
+) -> None:
+    """Pasted into a spreadsheet, "\u22120.36" arrives as text and "-0.36" as a number; the
+    HTML may keep the typographic minus (it lines up with "+")."""
+    assert "\u2212" not in rendered.text
+    assert re.search(r"change +-0\.36", rendered.text)
+    assert "\u22120.36" in rendered.html_for_email
 
 
 def test_text_part_carries_movers_group_averages_matrix_and_data_issues(
     rendered: RenderedDigest,
 ) -> None:
     text = rendered.text
-    assert re.search(r"KLV / ZRL +ewma:hl=21 +now +0\.12 +before +0\.48 +change +\u22120\.36", text)
+    assert re.search(r"KLV / ZRL +ewma:hl=21 +now +0\.12 +before +0\.48 +change +-0\.36", text)
     assert re.search(
         r"Kelvara core +now +0\.44 +before +0\.31 +change +\+0\.13 +pairs 3 of 3", text
     )
@@ -752,3 +762,10 @@ def test_instruments_without_names_print_no_empty_brackets() -> None:
     html = _squash(BeautifulSoup(render_digest(context).html_for_email,
                                  "html.parser").get_text(" "))
     assert "( / )" not in html and "()" not in html
+
+
+def test_matrix_csv_writes_the_ascii_minus() -> None:
+    from monitor.digest.figures import _matrix_csv
+
+    data = _matrix_csv(["KLV", "ORMA"], np.array([[1.0, -0.25], [-0.25, 1.0]])).decode()
+    assert "KLV,1.0000,-0.2500" in data and "\u2212" not in data

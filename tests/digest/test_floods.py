@@ -378,6 +378,30 @@ def test_method_notes_reach_the_digest_for_a_shift_alert_and_not_a_level_alert(
     assert "Tested:" in shift_card and "Tested:" not in level_card
 
 
+def test_an_alert_acknowledged_and_cleared_the_same_evening_is_listed_as_cleared_only(
+    real_rules: list[Any]
+) -> None:
+    returns = _returns()
+    day = returns.index[-1].date()
+    facts = [AlertFacts(id=7, rule="hedge-level", target="RT00/UT00", opened_on=day,
+                        first_breach_on=day, state="cleared", cleared_on=day,
+                        severity="warning", rule_kind="level", announced=True,
+                        acknowledged_by="r.vell", acknowledged_at=datetime(2026, 3, 5, 17,
+                                                                          tzinfo=UTC))]
+    inputs = DigestInputs(
+        desk="Made-up Rates Desk", as_of=day, generated_at=datetime(2026, 3, 5, 18, tzinfo=UTC),
+        returns=returns, names={}, groups=GROUPS,
+        rules={r.name: r for r in real_rules}, alerts=facts,
+        monitored_pairs=np.array([[0, SYMBOLS.index("UT00")]]), measures=["rolling:21"],
+        return_kind="log", horizon=1, level=0.95, largest_changes_days=5, group_average_days=21,
+        history_days=60,
+    )
+    ctx = build_context(inputs)
+    assert [a.id for a in ctx.new_alerts] == [] and [a.id for a in ctx.cleared] == [7]
+    text = render_digest(ctx).text
+    assert "hedge-level" not in text.split("NEW ALERTS", 1)[1].split("STILL OPEN", 1)[0]
+
+
 def _text_cards(part: str) -> list[list[str]]:
     """The text part's alert cards: each starts with a "[SEVERITY]" line."""
     cards: list[list[str]] = []

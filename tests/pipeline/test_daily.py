@@ -17,7 +17,7 @@ import pytest
 
 from monitor.config import Settings
 from monitor.demo.synthetic import generate
-from monitor.pipeline import ingest_file, init_store, run_daily, run_days
+from monitor.pipeline import daily, ingest_file, init_store, run_daily, run_days
 from storage import Store
 from storage import alerts as alerts_store
 from storage import outbox as outbox_store
@@ -115,6 +115,20 @@ def test_empty_inbox_on_a_business_day_opens_a_data_alert_and_says_so(
     html = (report.digest.folder / "digest.html").read_text(encoding="utf-8")
     assert f"No closes for {day}" in html
     assert "data-feed" in html  # the alert itself is listed, not only the headline
+    # The run's summary counts the data-feed alert it opened; the digest is headed with
+    # the run's date, not the last close's.
+    assert report.feed_event == "opened"
+    assert report.evaluation is not None
+    e = report.evaluation
+    assert f"; {e.opened + 1} opened, {e.cleared} cleared" in daily._describe_daily(report)
+    text = (report.digest.folder / "digest.txt").read_text(encoding="utf-8")
+    assert text.splitlines()[0].endswith(f"correlation digest for {day}")
+    assert f"correlation digest for {day}" in html
+    assert report.digest.subject.split(": correlation digest ")[1].startswith(str(day))
+    later = run_daily(store, settings, LATER_DAYS[1], environ={})
+    assert later.feed_event == "continuing" and later.evaluation is not None
+    assert (f"; {later.evaluation.opened} opened, {later.evaluation.cleared} cleared"
+            in daily._describe_daily(later))
 
 
 def test_a_rejected_file_is_moved_aside_with_its_report(
