@@ -36,7 +36,7 @@ from monitor.digest.context import (
 )
 from monitor.digest.order import alert_sort_key
 from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
-from monitor.engine.drivers import drivers
+from monitor.engine.drivers import measure_drivers
 from monitor.engine.group_average import group_average
 from monitor.engine.strength import describe
 from monitor.rules import Rule
@@ -44,8 +44,6 @@ from monitor.rules.targets import GroupTargets, PairTargets
 from monitor.templating import SCREENFUL
 
 MOVERS_SHOWN = 10
-DRIVER_WINDOW = 63
-"""Window for the drivers of an alert on a measure that has no window (EWMA)."""
 
 
 @dataclass(frozen=True)
@@ -116,11 +114,6 @@ def _rule_levels(rule: Rule) -> tuple[float | None, float | None, str]:
     if rule.kind == "jump":
         return float(getattr(rule, "delta", math.nan)), None, ""
     return None, None, ""
-
-
-def _driver_window(measure: str) -> int:
-    spec = parse_measure(measure)
-    return int(spec.window) if spec.window else DRIVER_WINDOW
 
 
 def build_context(inputs: DigestInputs) -> DigestContext:
@@ -250,10 +243,9 @@ def _with_histories(alerts: Sequence[AlertView], inputs: DigestInputs, matrix: n
         values = np.array([d.value for d in days]).reshape(len(days), len(group))
         lows = np.array([d.low for d in days]).reshape(len(days), len(group))
         highs = np.array([d.high for d in days]).reshape(len(days), len(group))
-        window = _driver_window(measure)
         for k, alert in enumerate(group):
             ia, ib = int(pairs[k, 0]), int(pairs[k, 1])
-            rows, contributions = drivers(matrix, ia, ib, t, window).ranked()
+            rows, contributions = measure_drivers(matrix, ia, ib, t, measure).ranked()
             filled[alert.id] = replace(
                 alert,
                 history=AlertHistory(dates=dates[first_history:t + 1], values=values[:, k],
@@ -263,6 +255,7 @@ def _with_histories(alerts: Sequence[AlertView], inputs: DigestInputs, matrix: n
                                return_a=float(matrix[int(r), ia]),
                                return_b=float(matrix[int(r), ib]))
                     for r, c in zip(rows, contributions, strict=True)),
+                drivers_measure=measure,
             )
     return [filled.get(a.id, a) for a in alerts]
 

@@ -151,6 +151,10 @@ class AlertView:
     cleared_on : date or None
         The day it cleared, for cleared alerts.
     drivers : tuple of DriverView
+        Every date of the window with its contribution (they add up to the value of
+        ``drivers_measure``); the digest shows the largest and the rest as one sum.
+    drivers_measure : str
+        The measure the drivers explain (``rolling:63``, ``rank:63``, ``ewma:hl=21``, ...).
         Days that moved the value most; the digest shows the five largest by |contribution|.
     history : AlertHistory or None
         The measure's recent history for the chart; None draws no chart.
@@ -198,6 +202,7 @@ class AlertView:
     reminder: bool = False
     groups: Sequence[str] = ()
     method_note: str = ""
+    drivers_measure: str = ""
 
     def __post_init__(self) -> None:
         if self.severity not in SEVERITY_RANK:
@@ -231,6 +236,21 @@ class AlertView:
             key=lambda d: (-abs(d.contribution) if _finite(d.contribution) else math.inf, d.day),
         )
         return tuple(ranked[:MAX_DRIVERS])
+
+    @property
+    def other_drivers(self) -> tuple[int, float]:
+        """The days beyond :attr:`top_drivers` and the sum of their contributions, so that
+        the shown days plus this remainder add up to the value the drivers explain."""
+        shown = {id(d) for d in self.top_drivers}
+        rest = [d.contribution for d in self.drivers
+                if id(d) not in shown and _finite(d.contribution)]
+        return len(rest), float(math.fsum(rest))
+
+    @property
+    def drivers_total(self) -> float:
+        """The sum of every day's contribution: the value of :attr:`drivers_measure`."""
+        return float(math.fsum(d.contribution for d in self.drivers
+                               if _finite(d.contribution)))
 
     @property
     def excess(self) -> float:

@@ -19,8 +19,8 @@ import numpy as np
 import pandas as pd
 
 from monitor import __version__
-from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
-from monitor.engine.drivers import drivers
+from monitor.engine import matrix_on_pair_dates, stream_on_pair_dates
+from monitor.engine.drivers import measure_drivers
 from monitor.engine.group_average import group_average
 from monitor.pages.context import (
     AckView,
@@ -45,7 +45,6 @@ from monitor.pages.context import (
 from monitor.rules import Rule
 from monitor.rules.targets import PairTargets
 
-DRIVER_WINDOW = 63
 DRIVERS_KEPT = 10
 
 
@@ -298,17 +297,18 @@ def _acks(alerts: Sequence[Any], by_alert: Mapping[int, Sequence[Mapping[str, An
 def _drivers(alert: Any, matrix: np.ndarray, cols: list[int], dates: list[dt.date],
              rules: Mapping[str, Rule]) -> DriversView:
     rule = rules.get(alert.rule)
-    window = DRIVER_WINDOW
-    if rule is not None and rule.measures():
-        spec = parse_measure(rule.measures()[0])
-        window = int(spec.window) if spec.window else DRIVER_WINDOW
-    if alert.opened_on not in dates:
+    if rule is None or not rule.measures() or alert.opened_on not in dates:
         return DriversView(alert_id=alert.id, day=alert.opened_on)
+    measure = rule.measures()[0]
     t = dates.index(alert.opened_on)
-    found = drivers(matrix, cols[0], cols[1], t, window)
-    order = np.argsort(-np.abs(np.nan_to_num(found.contributions)))[:DRIVERS_KEPT]
+    found = measure_drivers(matrix, cols[0], cols[1], t, measure)
+    order = np.argsort(-np.abs(np.nan_to_num(found.contributions)), kind="stable")
+    kept, rest = order[:DRIVERS_KEPT], order[DRIVERS_KEPT:]
     rows = [DriverRow(day=dates[int(found.days[k])], contribution=float(found.contributions[k]),
                       return_a=float(matrix[int(found.days[k]), cols[0]]),
                       return_b=float(matrix[int(found.days[k]), cols[1]]))
-            for k in order.tolist()]
-    return DriversView(alert_id=alert.id, day=alert.opened_on, rows=rows)
+            for k in kept.tolist()]
+    finite = found.contributions[rest][np.isfinite(found.contributions[rest])]
+    return DriversView(alert_id=alert.id, day=alert.opened_on, rows=rows, measure=measure,
+                       other_days=int(finite.size), other_sum=float(math.fsum(finite)),
+                       total=found.value)

@@ -356,11 +356,22 @@ class DriversView:
         The day the drivers were computed for (usually the alert's first day).
     rows : tuple of DriverRow
         In the order to show them (the pipeline ranks them).
+    measure : str
+        The measure the contributions explain.
+    other_days, other_sum : int, float
+        The window's other dates and the sum of their contributions: the rows plus this
+        remainder add up to ``total``.
+    total : float
+        The measure's value that day (NaN when unknown).
     """
 
     alert_id: int | str
     day: date
     rows: Sequence[DriverRow] = ()
+    measure: str = ""
+    other_days: int = 0
+    other_sum: float = 0.0
+    total: float = float("nan")
 
     def __post_init__(self) -> None:
         tuple_fields(self, "rows")

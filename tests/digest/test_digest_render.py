@@ -314,11 +314,17 @@ def test_shift_alert_shows_p_value_and_baseline(soup: BeautifulSoup) -> None:
 def test_drivers_table_lists_five_largest_days_with_both_returns(soup: BeautifulSoup) -> None:
     block = soup.select_one('#new-alerts table.alert[data-alert-id="11"]')
     assert block is not None
-    rows = block.select("table.drivers tbody tr")
+    rows = block.select("table.drivers tbody tr:not(.other-days)")
     assert len(rows) == 5
     contributions = [row.select_one(".contribution").get_text() for row in rows]  # type: ignore[union-attr]
     # Of 0.01, -0.09, 0.05, 0.002, -0.07, 0.03, 0.11 the five largest in size:
     assert contributions == ["+0.110", "\u22120.090", "\u22120.070", "+0.050", "+0.030"]
+    # the remainder, so that the table adds up to the value the drivers explain
+    other = block.select_one("table.drivers tr.other-days")
+    assert other is not None
+    assert _squash(other.get_text(" ")) == "the other 2 days +0.012"
+    note = _squash(block.select_one("table.drivers").find_previous("div").get_text())  # type: ignore[union-attr]
+    assert note == "Days that moved the value most: each date's share of rolling:63 = +0.042"
     first = rows[0]
     # Day index 6 of _drivers(): returns 0.7 % and -1.4 %.
     assert first.select_one(".return-a").get_text() == "0.70 %"  # type: ignore[union-attr]

@@ -43,3 +43,37 @@ def test_a_constant_side_has_no_drivers() -> None:
 def test_window_shorter_than_three_is_a_config_error() -> None:
     with pytest.raises(EngineInputError, match="drivers window"):
         drivers(desk_returns(), 0, 1, 100, 2)
+
+
+# --- every measure: the contributions add up to the alert's value ----------------------
+
+
+@pytest.mark.parametrize("measure", ["rolling:40", "rank:40", "ewma:hl=15",
+                                     "ewma:hl=15,mean=zero", "rank:40,scale=vol"])
+def test_contributions_of_every_measure_sum_to_its_value(measure: str) -> None:
+    """The value: the pair-dates stream (the rules' numbers); Spearman also checked against
+    scipy.stats.spearmanr and the weighted EWMA against pandas ewm(halflife).corr."""
+    import pandas as pd
+    from scipy import stats
+
+    from monitor.engine import stream_on_pair_dates
+    from monitor.engine.drivers import measure_drivers
+    from tests.engine.test_pairdates import _calendars
+
+    values = _calendars()
+    for i, j in ((0, 1), (0, 2), (1, 3), (2, 4)):
+        for t in (150, 399):
+            found = measure_drivers(values, i, j, t, measure)
+            engine = next(stream_on_pair_dates(values, measure, np.array([[i, j]]), start=t,
+                                               stop=t + 1)).value[0]
+            assert found.contributions.sum() == pytest.approx(engine, abs=1e-10)
+            assert found.value == pytest.approx(engine, abs=1e-10)
+            own = pd.DataFrame(values[:t + 1, [i, j]]).dropna()
+            if measure == "rank:40":
+                window = own.iloc[-40:]
+                rho = stats.spearmanr(window[0], window[1]).statistic
+                assert found.contributions.sum() == pytest.approx(rho, abs=1e-12)
+                assert len(found.days) == 40
+            if measure == "ewma:hl=15":
+                expected = own[0].ewm(halflife=15).corr(own[1]).iloc[-1]
+                assert found.contributions.sum() == pytest.approx(expected, abs=1e-10)

@@ -76,7 +76,8 @@ def test_digest_for_the_opening_day_shows_the_break_with_its_drivers(
     driver_tables = [t for t in soup.find_all("table")
                      if t.find("th", string="Contribution") and not t.find("table")]
     assert len(driver_tables) == 1, "one alert, one drivers table"
-    rows = driver_tables[0].find("tbody").find_all("tr")
+    rows = [r for r in driver_tables[0].find("tbody").find_all("tr")
+            if "other-days" not in (r.get("class") or [])]
     assert len(rows) == 5
     for row in rows:
         cells = [td.get_text(strip=True) for td in row.find_all("td")]
@@ -156,3 +157,50 @@ def test_still_open_alerts_are_marked_as_reminders_only_on_their_reminder_days(
         line = next(x for x in outcome.paths.text.read_text().splitlines()
                     if "hedge-break" in x and "not acknowledged" in x)
         assert ("reminder: not acknowledged" in line) is expected
+
+
+RANK_RULE = """
+[[rules]]
+name = "hedge-rank"
+kind = "level"
+measure = "rank:21"
+pairs = ["KLV/DUNQ"]
+below = 0.3
+clear = 0.45
+hold = 3
+"""
+
+
+@pytest.mark.parametrize("measure", ["rank:21", "ewma:hl=10"])
+def test_drivers_of_rank_and_ewma_alerts_add_up_to_the_alerts_value(
+    measure: str, tmp_path: Path, write_settings: Callable[..., Settings], closes_csv: Path
+) -> None:
+    settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}",
+                              INSTRUMENTS + RANK_RULE.replace("rank:21", measure))
+    store = init_store(settings)
+    try:
+        ingest_file(store, settings, closes_csv, today=dt.date(2024, 1, 5))
+        evaluate_range(store, settings, None, None)
+        with store.connect() as conn:
+            alert = next(a for a in alerts_store.list_alerts(conn) if a.rule == "hedge-rank")
+            opened = next(e for e in alerts_store.events_for(conn, date=alert.opened_on)
+                          if e["alert_id"] == alert.id)
+        outcome = render_digest_files(store, settings, alert.opened_on,
+                                      out_dir=tmp_path / "d",
+                                      now=dt.datetime(2024, 1, 5, 18, tzinfo=dt.UTC))
+    finally:
+        store.dispose()
+    soup = BeautifulSoup(outcome.paths.html.read_text(encoding="utf-8"), "html.parser")
+    table = soup.select_one("table.drivers")
+    assert table is not None
+    note = " ".join(table.find_previous("div").get_text().split())
+    assert f"share of {measure} =" in note  # says which measure the days explain
+    shown = [float(td.get_text().replace("\u2212", "-"))
+             for td in table.select("td.contribution")]
+    assert len(shown) == 6  # five days and "the other N days"
+    other = " ".join(table.select_one("tr.other-days").get_text(" ").split())
+    assert other.startswith("the other ") and " days " in other
+    # the shown contributions (3 decimals each) add up to the alert's value
+    assert sum(shown) == pytest.approx(opened["value"], abs=0.004)
+    total = float(note.rsplit("=", 1)[1].replace("\u2212", "-"))
+    assert total == pytest.approx(opened["value"], abs=0.0005)
