@@ -227,6 +227,13 @@ class CorrelationSettings:
     default_measure: str = setting(
         "rolling:63", "Measure of a rule that does not name one.", check=_measure,
     )
+    max_window: int = setting(
+        2520,
+        "Longest window (rows of returns) of any measure, and longest EWMA half-life, in "
+        "business days (2520: about ten years). A longer one is a settings error: it could "
+        "exhaust the memory and shows nothing until that much history exists.",
+        kind=int, check=_at_least(3),
+    )
     largest_changes_days: int = setting(
         5, "Business days over which the digest's 'largest changes' are measured.",
         kind=int, check=_at_least(1),
@@ -528,7 +535,27 @@ def _raw_section_problems(sections: Mapping[str, Any], base_dir: Path) -> list[s
         # With no instruments listed the store decides the symbols: kinds and keys only.
         symbols = list(dict.fromkeys(inst.symbol for inst in instruments)) or None
         problems.extend(rule_problems(sections["rules"], symbols=symbols, groups=groups,
-                                      default_measure=correlation.default_measure))
+                                      default_measure=correlation.default_measure,
+                                      max_window=correlation.max_window))
+    if correlation is not None:
+        problems.extend(_window_problems(correlation))
+    return problems
+
+
+def _window_problems(correlation: CorrelationSettings) -> list[str]:
+    """The [correlation] measures against `max_window` (the rules' are checked with them)."""
+    from monitor.engine import parse_measure, window_problem
+    from monitor.errors import SpecError
+
+    problems = []
+    named = [(f"correlation.measures[{i}]", text) for i, text in enumerate(correlation.measures)]
+    for key, text in [*named, ("correlation.default_measure", correlation.default_measure)]:
+        try:
+            problem = window_problem(parse_measure(text), correlation.max_window)
+        except SpecError:
+            continue  # reported by the key's own check
+        if problem:
+            problems.append(f"{key}: {problem}")
     return problems
 
 

@@ -32,7 +32,7 @@ from monitor.engine.shift import (
     nested_z,
     two_sided_p,
 )
-from monitor.engine.spec import Measure, max_effective_count, parse_measure
+from monitor.engine.spec import Measure, max_effective_count, parse_measure, window_problem
 from monitor.engine.stream import DayResult, one_day, stream, tile
 from monitor.engine.strength import (
     DEFAULT_LADDER,
@@ -71,6 +71,7 @@ __all__ = [
     "one_day",
     "own_standardise",
     "parse_measure",
+    "window_problem",
     "stream",
     "strength",
     "stream_on_pair_dates",

@@ -277,6 +277,21 @@ def parse_measure(text: str) -> Measure:
     return _parse_window(text, kind, items)
 
 
+def window_problem(measure: Measure, max_window: int) -> str | None:
+    """Why `measure` reaches further back than `max_window` rows, or None when it does not.
+
+    A rolling or rank window, or an EWMA half-life, above the desk's maximum is refused:
+    such a measure holds that many rows per pair and shows nothing until they exist.
+    """
+    if measure.window is not None and measure.window > max_window:
+        return (f"measure {measure.text} has a window of {measure.window} rows, more than "
+                f"correlation.max_window ({max_window})")
+    if measure.half_life is not None and measure.half_life > max_window:
+        return (f"measure {measure.text} has a half-life of {measure.half_life:g} days, more "
+                f"than correlation.max_window ({max_window})")
+    return None
+
+
 def as_measure(measure: Measure | str) -> Measure:
     """Accept a parsed measure or its text."""
     return measure if isinstance(measure, Measure) else parse_measure(measure)

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import datetime as dt
 import difflib
+import logging
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -37,6 +38,8 @@ from storage import alerts as alerts_store
 from storage import closes as closes_store
 from storage import runs as runs_store
 
+LOG = logging.getLogger("comove.evaluate")
+
 
 def build_plan(settings: Settings, symbols: Sequence[str],
                rule_names: Sequence[str] | None = None) -> Plan:
@@ -44,6 +47,7 @@ def build_plan(settings: Settings, symbols: Sequence[str],
     rules = build_rules(
         list(settings.rule_tables), symbols=list(symbols), groups=settings.groups,
         default_measure=settings.correlation.default_measure,
+        max_window=settings.correlation.max_window,
     )
     if rule_names:
         known = {rule.name for rule in rules}
@@ -54,6 +58,26 @@ def build_plan(settings: Settings, symbols: Sequence[str],
                 raise ConfigError(f"--rule: no rule named {name!r}{near}")
         rules = [rule for rule in rules if rule.name in set(rule_names)]
     return make_plan(rules, symbols, level=settings.correlation.level)
+
+
+def _check_history(plan: Plan, rows: int, dates: Sequence[dt.date], *, strict: bool) -> None:
+    """A measure whose window is longer than the whole stored history shows nothing: a
+    settings error for a backfill; for the evening run (history still growing) one warning
+    line, so the other rules still run and the digest still goes out."""
+    from monitor.engine import parse_measure
+
+    for rule in plan.rules:
+        for text in rule.measures():
+            measure = parse_measure(text)
+            needed = measure.window if measure.window is not None else measure.min_count
+            if needed <= rows:
+                continue
+            message = (f"rule {rule.name!r}: measure {text} needs {needed} returns but the "
+                       f"store holds {rows} (from {dates[0]} to {dates[-1]}); shorten the "
+                       "window or ingest more history")
+            if strict:
+                raise ConfigError(message)
+            LOG.warning("%s; it shows nothing until then", message)
 
 
 def _scope(settings: Settings, plan: Plan) -> str:
@@ -146,6 +170,7 @@ def evaluate_range(
     dates = data.dates
     if not dates:
         raise ComoveError("no returns to evaluate: ingest closes first (comove ingest FILE)")
+    _check_history(plan, len(dates), dates, strict=kind == "backfill")
     first = start or dates[0]
     last = min(end or dates[-1], dates[-1])
     if first > last:

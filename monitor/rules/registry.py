@@ -57,6 +57,7 @@ def build_rules(
     symbols: Sequence[str],
     groups: Mapping[str, Sequence[str]],
     default_measure: str | None = None,
+    max_window: int | None = None,
 ) -> list[Rule]:
     """Build and check every rule of the configuration.
 
@@ -70,6 +71,8 @@ def build_rules(
         Named groups of instruments.
     default_measure : str, optional
         Measure spec used by rules that do not set ``measure``.
+    max_window : int, optional
+        Longest window or half-life a rule's measures may have (``correlation.max_window``).
 
     Returns
     -------
@@ -85,14 +88,15 @@ def build_rules(
     rules: list[Rule] = []
     seen: dict[str, int] = {}
     for index, table in enumerate(tables):
-        rule = _build_one(table, index, universe, default_measure, seen)
+        rule = _build_one(table, index, universe, default_measure, seen, max_window)
         assert rule is not None
         rules.append(rule)
     return rules
 
 
 def _build_one(table: object, index: int, universe: Universe | None,
-               default_measure: str | None, seen: dict[str, int]) -> Rule | None:
+               default_measure: str | None, seen: dict[str, int],
+               max_window: int | None = None) -> Rule | None:
     """One rule from its table; with no universe only its kind, keys and name are checked."""
     if not isinstance(table, Mapping):
         raise ConfigError(f"rules[{index}]: expected a table, got {type(table).__name__}")
@@ -107,6 +111,13 @@ def _build_one(table: object, index: int, universe: Universe | None,
             "name", f"duplicate rule name {rule.name!r} (also rules[{seen[rule.name]}])"
         )
     seen[rule.name] = index
+    if max_window is not None:
+        from monitor.engine.spec import parse_measure, window_problem
+
+        for text in rule.measures():
+            problem = window_problem(parse_measure(text), max_window)
+            if problem:
+                raise reader.error("measure", problem)
     return rule
 
 
@@ -116,6 +127,7 @@ def rule_problems(
     symbols: Sequence[str] | None,
     groups: Mapping[str, Sequence[str]],
     default_measure: str | None = None,
+    max_window: int | None = None,
 ) -> list[str]:
     """Every problem of the ``[[rules]]`` tables, one line each (at most one per rule).
 
@@ -132,7 +144,7 @@ def rule_problems(
     seen: dict[str, int] = {}
     for index, table in enumerate(tables):
         try:
-            _build_one(table, index, universe, default_measure, seen)
+            _build_one(table, index, universe, default_measure, seen, max_window)
         except ConfigError as exc:
             problems.append(str(exc))
     return problems
