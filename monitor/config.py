@@ -298,6 +298,10 @@ class DigestSettings:
                             "outbox.", kind=int, check=_at_least(1))
     backoff_seconds: float = setting(2.0, "Wait before the second try; doubles each time.",
                                      kind=(int, float), check=_positive)
+    max_email_bytes: int = setting(
+        2_000_000, "Largest digest email in bytes (mail relays refuse large messages): a "
+        "longer one leaves out alert charts, then shows fewer alerts in full, and says so "
+        "in a 'Shortened:' line.", kind=int, check=_at_least(20_000))
     folder: str = setting(
         "digests", "Folder of rendered digests, one sub-folder per date; relative to the "
         "settings file's folder.",

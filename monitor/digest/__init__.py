@@ -10,6 +10,7 @@ Code outside this package imports from here; the modules inside are free to move
 - `figures`: which charts and matrix tables the digest carries, and their names;
 - `png_charts`: drawing the charts;
 - `render`: subject, HTML and text (`render_digest`);
+- `fit`: the email kept under `[digest] max_email_bytes` (`fit_email`);
 - `rendered`: the rendered digest's dataclasses;
 - `message`: the MIME email (`build_message`);
 - `files`: the digest folder on disk (`write_digest`);
@@ -19,6 +20,7 @@ Code outside this package imports from here; the modules inside are free to move
 from monitor.digest.build import AlertFacts, DigestInputs, build_context
 from monitor.digest.context import DataIssueView
 from monitor.digest.files import write_digest
+from monitor.digest.fit import FittedDigest, fit_email
 from monitor.digest.mailer import MailError, SmtpSettings, send_message
 from monitor.digest.message import build_message
 from monitor.digest.render import render_digest
@@ -28,11 +30,13 @@ __all__ = [
     "AlertFacts",
     "DataIssueView",
     "DigestInputs",
+    "FittedDigest",
     "MailError",
     "RenderedDigest",
     "SmtpSettings",
     "build_context",
     "build_message",
+    "fit_email",
     "render_digest",
     "send_message",
     "write_digest",

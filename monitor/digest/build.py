@@ -329,18 +329,31 @@ def _movers(inputs: DigestInputs, matrix: np.ndarray, symbols: list[str], t: int
     if pairs.size == 0 or before_t < 0:
         return []
     measure = inputs.measures[0]
-    days = list(stream_on_pair_dates(matrix, measure, pairs, start=before_t, stop=t + 1,
-                                     level=inputs.level))
-    now, before = days[-1].value, days[0].value
+    # Only the two days compared: the days between would be computed and held for
+    # nothing (4.5 million pairs x 3 arrays a day at 3,000 instruments).
+    before = next(stream_on_pair_dates(matrix, measure, pairs, start=before_t,
+                                       stop=before_t + 1, level=inputs.level)).value
+    now = next(stream_on_pair_dates(matrix, measure, pairs, start=t, stop=t + 1,
+                                    level=inputs.level)).value
     with np.errstate(invalid="ignore"):
         change = np.abs(now - before)
-    ranked = np.argsort(np.where(np.isnan(change), -1.0, change))[::-1][:MOVERS_SHOWN]
+    ranked = _largest(np.where(np.isnan(change), -1.0, change), MOVERS_SHOWN)
     return [
         MoverView(a=_instrument(symbols[pairs[k, 0]], inputs.names),
                   b=_instrument(symbols[pairs[k, 1]], inputs.names), measure=measure,
                   value_now=float(now[k]), value_before=float(before[k]))
         for k in ranked.tolist() if not math.isnan(change[k])
     ]
+
+
+def _largest(values: np.ndarray, count: int) -> np.ndarray:
+    """Positions of the `count` largest values, largest first (ties: higher position
+    first, as a reversed stable argsort), without sorting the whole array."""
+    if values.size > count:
+        top = np.argpartition(values, values.size - count)[values.size - count:]
+    else:
+        top = np.arange(values.size)
+    return top[np.lexsort((-top, -values[top]))]
 
 
 def _groups(inputs: DigestInputs, matrix: np.ndarray, column: Mapping[str, int],

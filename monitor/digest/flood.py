@@ -142,6 +142,42 @@ def summarise(alerts: Sequence[AlertView], *, limit: int = SCREENFUL,
     return AlertList(shown=tuple(alerts[:limit]), total=len(alerts), rows=rows, links=links)
 
 
+def shortened_line(lists: Sequence[tuple[str, AlertList]], *, charts_left_out: int = 0,
+                   max_email_bytes: int | None = None, pages: str = "index.html") -> str:
+    """The digest's "Shortened:" line: what the email leaves out and where it is.
+
+    Parameters
+    ----------
+    lists : sequence of (str, AlertList)
+        Each list with the words naming it ("new alerts", "still open", ...).
+    charts_left_out : int
+        Charts of alerts shown in full that were left out to keep the email small.
+    max_email_bytes : int, optional
+        The size the email was kept under, named when charts were left out.
+    pages : str
+        Where the full lists are: the history pages' index (path or address).
+
+    Returns
+    -------
+    str
+        "" when nothing was left out.
+    """
+    parts = [f"{summary.more:,} of {summary.total:,} {name}"
+             for name, summary in lists if summary.summarised]
+    if not parts and not charts_left_out:
+        return ""
+    line = "Shortened:"
+    if parts:
+        line += " not shown in full: " + ", ".join(parts) + " (each list's table by rule and "
+        line += "group counts them all)"
+    if charts_left_out:
+        size = (f" to keep the email under {max_email_bytes / 1e6:.1f} MB"
+                if max_email_bytes else "")
+        line += ("; " if parts else " ") + (
+            f"{charts_left_out} chart{'s' if charts_left_out != 1 else ''} left out{size}")
+    return line + f". Every alert is listed on the history pages ({pages})."
+
+
 __all__ = [
     "NO_GROUP",
     "SCREENFUL",
@@ -149,5 +185,6 @@ __all__ = [
     "SummaryRow",
     "group_label",
     "pages_filter",
+    "shortened_line",
     "summarise",
 ]

@@ -10,12 +10,13 @@ long list leaves out from `monitor.digest.flood`.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import replace
 from typing import Any
 
 from monitor.digest import png_charts
 from monitor.digest.context import AlertView, DigestContext
 from monitor.digest.figures import build_figures
-from monitor.digest.flood import SCREENFUL, summarise
+from monitor.digest.flood import SCREENFUL, shortened_line, summarise
 from monitor.digest.footer import cautions
 from monitor.digest.order import alert_sort_key, issue_sort_key, mover_sort_key
 from monitor.digest.rendered import RenderedDigest
@@ -50,7 +51,8 @@ def method_notes(*lists: Sequence[AlertView]) -> list[tuple[str, str]]:
     return list(notes.items())
 
 
-def render_digest(ctx: DigestContext) -> RenderedDigest:
+def render_digest(ctx: DigestContext, *, limit: int = SCREENFUL, charts: int | None = None,
+                  max_email_bytes: int | None = None) -> RenderedDigest:
     """Render one evening's digest to HTML (two variants), plain text and PNG charts.
 
     Parameters
@@ -63,6 +65,13 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
         by rule and group for the rest; charts are drawn for the shown alerts only, so
         the email does not grow with the flood.
 
+    limit : int
+        Most alerts of each list shown in full (`SCREENFUL`; `fit_email` lowers it).
+    charts : int, optional
+        Most alert charts (the first shown alerts'); None: one per shown new alert.
+    max_email_bytes : int, optional
+        The size limit charts were left out for, named in the "Shortened:" line.
+
     Returns
     -------
     RenderedDigest
@@ -70,9 +79,23 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
     """
     new_alerts = sorted(ctx.new_alerts, key=alert_sort_key)
     continuing = sorted(ctx.continuing, key=alert_sort_key)
-    new_list = summarise(new_alerts, opened=ctx.as_of)
-    continuing_list = summarise(continuing, state="open")
-    images, by_key, tables, attachments = build_figures(ctx, new_list.shown)
+    acknowledged = sorted(ctx.acknowledged, key=alert_sort_key)
+    cleared = sorted(ctx.cleared, key=alert_sort_key)
+    new_list = summarise(new_alerts, limit=limit, opened=ctx.as_of)
+    continuing_list = summarise(continuing, limit=limit, state="open")
+    acknowledged_list = summarise(acknowledged, limit=limit, state="open")
+    cleared_list = summarise(cleared, limit=limit, state="cleared")
+    chartable = [a for a in new_list.shown if a.history is not None]
+    charted = chartable if charts is None else chartable[:max(0, charts)]
+    drawn = {id(a) for a in charted}
+    images, by_key, tables, attachments = build_figures(
+        ctx, [a if id(a) in drawn else replace(a, history=None) for a in new_list.shown])
+    pages = (f"{ctx.pages_url}index.html" if ctx.pages_url else "index.html")
+    shortened = shortened_line(
+        [("new alerts", new_list), ("still open", continuing_list),
+         ("acknowledged", acknowledged_list), ("cleared today", cleared_list)],
+        charts_left_out=len(chartable) - len(charted), max_email_bytes=max_email_bytes,
+        pages=pages)
     environment = make_environment()
     common: dict[str, Any] = {
         "ctx": ctx,
@@ -83,8 +106,11 @@ def render_digest(ctx: DigestContext) -> RenderedDigest:
         "continuing_list": continuing_list,
         "screenful": SCREENFUL,
         "method_notes": method_notes(new_alerts, continuing, ctx.acknowledged, ctx.cleared),
-        "acknowledged": sorted(ctx.acknowledged, key=alert_sort_key),
-        "cleared": sorted(ctx.cleared, key=alert_sort_key),
+        "acknowledged": acknowledged,
+        "cleared": cleared,
+        "acknowledged_list": acknowledged_list,
+        "cleared_list": cleared_list,
+        "shortened": shortened,
         "movers": sorted(ctx.movers, key=mover_sort_key),
         "data_quality": sorted(ctx.data_quality, key=issue_sort_key),
         "matrix_tables": tables,

@@ -37,7 +37,7 @@ import numpy.typing as npt
 
 from monitor._typing import Returns2D
 from monitor.engine.bands import DEFAULT_LEVEL, check_level
-from monitor.engine.layout import BoolArray, FloatArray, IntArray
+from monitor.engine.layout import BoolArray, FloatArray, IntArray, sorted_unique
 from monitor.engine.rank import average_ranks
 from monitor.engine.scaling import standardise
 from monitor.engine.spec import Measure, as_measure
@@ -103,9 +103,9 @@ def pair_sets(returns: Returns2D, pairs: IntArray) -> list[PairSet]:
         members = np.flatnonzero(which == k)
         i, j = pairs[members[0]]
         rows = np.flatnonzero(present[:, i] & present[:, j])
-        columns, local = np.unique(pairs[members], return_inverse=True)
-        sets.append(PairSet(members, rows, columns.astype(np.int64),
-                            np.asarray(local, dtype=np.int64).reshape(-1, 2)))
+        columns = sorted_unique(pairs[members])
+        local = np.searchsorted(columns, pairs[members])
+        sets.append(PairSet(members, rows, columns, np.asarray(local, dtype=np.int64)))
     return sets
 
 

@@ -5,6 +5,7 @@ pages.
 from __future__ import annotations
 
 import datetime as dt
+import logging
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -21,11 +22,14 @@ from monitor.data.returns import closes_to_returns
 from monitor.errors import ComoveError, ConfigError
 from monitor.pipeline.evaluate import build_plan
 from monitor.pipeline.store import FEED_RULE, read_closes, read_returns, schedule_of, universe
+from monitor.templating import SCREENFUL
 from storage import Store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
 from storage import outbox as outbox_store
 from storage import runs as runs_store
+
+LOG = logging.getLogger("comove.publish")
 
 STALE_DAYS_NOTED = 3
 """Business days without a new close after which the digest lists an instrument as stale
@@ -188,14 +192,26 @@ def render_digest_files(store: Store, settings: Settings, as_of: dt.date,
                         out_dir: Path | None = None, now: dt.datetime | None = None
                         ) -> DigestOutcome:
     """Render the digest for `as_of` into a folder: digest.html with PNGs, .txt and .eml."""
-    from monitor.digest import build_message, render_digest, write_digest
+    from monitor.digest import RenderedDigest, build_message, fit_email, write_digest
 
     now = now or dt.datetime.now(dt.UTC)
     ctx = digest_context(store, settings, as_of, now)
-    rendered = render_digest(ctx)
     d = settings.digest
-    message = build_message(rendered, sender=d.sender, recipients=list(d.recipients) or
-                            [d.sender], date=now, message_id_domain=_domain(d.sender))
+
+    def build(rendered: RenderedDigest) -> Any:
+        return build_message(rendered, sender=d.sender, recipients=list(d.recipients) or
+                             [d.sender], date=now, message_id_domain=_domain(d.sender))
+
+    fitted = fit_email(ctx, build, d.max_email_bytes)
+    rendered, message = fitted.rendered, fitted.message
+    if fitted.charts_left_out or fitted.limit < SCREENFUL:
+        LOG.info("digest %s: %d bytes with %d charts and up to %d alerts per list in full "
+                 "(digest.max_email_bytes %d)", as_of, fitted.size, fitted.charts,
+                 fitted.limit, d.max_email_bytes)
+    if not fitted.fits:
+        LOG.warning("digest %s: %d bytes, over digest.max_email_bytes %d even with one alert "
+                    "per list and no charts; sending it as it is", as_of, fitted.size,
+                    d.max_email_bytes)
     folder = out_dir or digest_folder(settings, as_of)
     paths = write_digest(rendered, folder, message=message)
     return DigestOutcome(as_of=as_of, folder=Path(folder), paths=paths,

@@ -11,6 +11,7 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 
+from monitor.engine.layout import sorted_unique
 from monitor.errors import ConfigError
 from monitor.renamed import OLD_RULE_KINDS, old_name_hint
 from monitor.rules.base import SEVERITIES, Rule
@@ -164,7 +165,7 @@ def pairs_needed(rules: Sequence[Rule], n_symbols: int) -> IntArray:
     """Union (P_all, 2) of the pairs the rules read, ``i < j``, sorted by (i, j)."""
     blocks = [rule.pairs_needed() for rule in rules]
     stacked = np.concatenate(blocks) if blocks else np.empty((0, 2), dtype=np.int64)
-    codes = np.unique(stacked[:, 0] * n_symbols + stacked[:, 1])
+    codes = sorted_unique(stacked[:, 0] * n_symbols + stacked[:, 1])
     return np.column_stack([codes // n_symbols, codes % n_symbols]).astype(np.int64)
 
 

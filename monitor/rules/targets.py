@@ -16,6 +16,7 @@ from typing import overload
 import numpy as np
 import numpy.typing as npt
 
+from monitor.engine.layout import sorted_unique
 from monitor.errors import ConfigError
 from monitor.rules.params import TableReader, suggestion
 
@@ -175,7 +176,7 @@ def _canonical(pairs: IntArray, n_symbols: int) -> IntArray:
     """Sort, de-duplicate and order each pair as (low, high)."""
     low = np.minimum(pairs[:, 0], pairs[:, 1])
     high = np.maximum(pairs[:, 0], pairs[:, 1])
-    codes = np.unique(low * n_symbols + high)
+    codes = sorted_unique(low * n_symbols + high)
     return np.column_stack([codes // n_symbols, codes % n_symbols]).astype(np.int64)
 
 

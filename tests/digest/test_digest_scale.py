@@ -95,3 +95,24 @@ def test_vectorised_values_equal_the_engine_on_each_pair_and_pandas() -> None:
     assert chart.history is not None
     expected = returns[chart.a.symbol].rolling(21).corr(returns[chart.b.symbol]).iloc[-60:]
     np.testing.assert_allclose(chart.history.values, expected.to_numpy(), atol=1e-9)
+
+
+def test_sorted_unique_equals_numpy_unique() -> None:
+    from monitor.engine.layout import sorted_unique
+
+    rng = np.random.default_rng(5)
+    for size in (0, 1, 7, 10_000):
+        values = rng.integers(-50, 50, size)
+        # Outside reference: numpy's own np.unique.
+        np.testing.assert_array_equal(sorted_unique(values), np.unique(values))
+
+
+def test_largest_changes_are_the_top_ten_of_a_full_sort() -> None:
+    from monitor.digest.build import _largest
+
+    rng = np.random.default_rng(6)
+    for size in (0, 4, 10, 11, 5_000):
+        values = rng.integers(0, 30, size).astype(float)
+        top = _largest(values, 10)
+        assert len(top) == min(10, size)
+        np.testing.assert_array_equal(values[top], np.sort(values)[::-1][:10])
