@@ -40,7 +40,7 @@ from monitor.engine.drivers import measure_drivers
 from monitor.engine.group_average import group_average
 from monitor.engine.strength import describe
 from monitor.rules import Rule
-from monitor.rules.targets import GroupTargets, PairTargets
+from monitor.rules.targets import GroupTargets, PairTargets, pair_symbols
 from monitor.templating import SCREENFUL
 
 MOVERS_SHOWN = 10
@@ -189,9 +189,9 @@ def _primary(rule: Rule | None) -> str:
 
 
 def _pair_columns(facts: AlertFacts, column: Mapping[str, int]) -> tuple[int, int] | None:
-    a_text, _, b_text = facts.target.partition("/")
-    if b_text and a_text in column and b_text in column:
-        return column[a_text], column[b_text]
+    pair = pair_symbols(facts.target, column)
+    if pair is not None and pair[0] in column and pair[1] in column:
+        return column[pair[0]], column[pair[1]]
     return None
 
 
@@ -266,7 +266,7 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
     event = facts.event_today or {}
     level, clear_level, direction = (None, None, "") if rule is None else _rule_levels(rule)
     measure = rule.measure_label() if rule is not None else ""
-    a_text, _, b_text = facts.target.partition("/")
+    a_text, b_text = pair_symbols(facts.target, column) or (facts.target, "")
     a = _instrument(a_text, inputs.names)
     b = _instrument(b_text, inputs.names) if b_text else Instrument(symbol="", name="")
     if not b_text and isinstance(getattr(rule, "targets", None), GroupTargets):

@@ -43,7 +43,7 @@ from monitor.pages.context import (
     TargetPage,
 )
 from monitor.rules import Rule
-from monitor.rules.targets import PairTargets
+from monitor.rules.targets import PairTargets, pair_symbols
 
 DRIVERS_KEPT = 10
 
@@ -126,8 +126,10 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
     for alert in inputs.alerts:
         rule = rules.get(alert.rule)
         kind: TargetKind
-        if "/" in alert.target:
-            kind, target = "pair", tuple(alert.target.split("/", 1))
+        target: tuple[str, ...]
+        pair = pair_symbols(alert.target, column)
+        if pair is not None:
+            kind, target = "pair", pair
         elif alert.rule_kind == "group-average":
             kind, target = "group", (alert.target,)
         else:
@@ -146,13 +148,16 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
         by_target.setdefault(alert.target, []).append(alert)
 
     pair_labels = list(dict.fromkeys(
-        [a.target for a in inputs.alerts if "/" in a.target]
+        [a.target for a in inputs.alerts if pair_symbols(a.target, column) is not None]
         + [label for rule in inputs.rules if isinstance(rule.targets, PairTargets)
            and _declared_pairs(inputs.rule_tables, rule.name)
            for label in rule.targets.labels]))
     pairs = []
     for label in pair_labels:
-        a, b = label.split("/", 1)
+        split = pair_symbols(label, column)
+        if split is None:
+            continue
+        a, b = split
         if a not in column or b not in column:
             continue
         alerts = by_target.get(label, [])
@@ -180,7 +185,7 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
 
     targets = []
     for label, alerts in by_target.items():
-        if "/" in label:
+        if pair_symbols(label, column) is not None:
             continue
         is_group = alerts[0].rule_kind == "group-average"
         members = list(inputs.groups.get(label, ())) if is_group else []

@@ -15,16 +15,22 @@ from monitor.engine import parse_measure
 from monitor.errors import ComoveError, ConfigError
 from monitor.pipeline.evaluate import build_plan
 from monitor.pipeline.store import desk_today, read_returns, universe
+from monitor.rules import split_pair
 from storage import Store
 from storage import alerts as alerts_store
 
 
 def canonical_pair(settings: Settings, symbols: Sequence[str], text: str) -> str:
-    """'B/A' or 'A/B' -> the label the rules use ('A/B' in the order of the universe)."""
-    parts = text.split("/")
+    """'B/A' or 'A/B' -> the label the rules use ('A/B' in the order of the universe). A
+    symbol may hold '/' itself ("EUR/USD/KLV" pairs EUR/USD with KLV)."""
+    order = {symbol: k for k, symbol in enumerate(symbols)}
+    readings = split_pair(text, order)
+    if len(readings) > 1:
+        choices = " or ".join(f"'{a}' with '{b}'" for a, b in readings)
+        raise ConfigError(f"--pair: {text!r} is ambiguous: {choices}")
+    parts = list(readings[0]) if readings else text.split("/")
     if len(parts) != 2 or not all(parts):
         raise ConfigError(f"--pair: {text!r} is not a pair written A/B")
-    order = {symbol: k for k, symbol in enumerate(symbols)}
     for part in parts:
         if part not in order:
             near = difflib.get_close_matches(part, list(order), n=1)

@@ -25,7 +25,15 @@ from monitor.rules.shift import ShiftRule
 from monitor.rules.sign import SignRule
 from monitor.rules.stale import StaleRule
 from monitor.rules.stats import fisher_difference, two_sided_p
-from monitor.rules.targets import GroupTargets, PairLayout, PairTargets, SymbolTargets, Targets
+from monitor.rules.targets import (
+    GroupTargets,
+    PairLayout,
+    PairTargets,
+    SymbolTargets,
+    Targets,
+    pair_symbols,
+    split_pair,
+)
 
 __all__ = [
     "RULE_KINDS",
@@ -51,9 +59,11 @@ __all__ = [
     "fisher_difference",
     "lags_needed",
     "measures_needed",
+    "pair_symbols",
     "pairs_needed",
     "rule_parameters",
     "rule_problems",
+    "split_pair",
     "take_pairs",
     "two_sided_p",
 ]

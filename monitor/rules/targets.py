@@ -24,6 +24,36 @@ IntArray = npt.NDArray[np.int64]
 BoolArray = npt.NDArray[np.bool_]
 
 
+def split_pair(text: str, symbols: Iterable[str] | Mapping[str, object]
+               ) -> list[tuple[str, str]]:
+    """The ways `text` ("A/B") reads as two known symbols, trying every '/' in it (a
+    symbol may itself hold '/', as "EUR/USD" in "EUR/USD/KLV"). Blanks around each side
+    are dropped. One answer: the pair; none: not a pair of these symbols; several:
+    ambiguous (the caller says so)."""
+    known = symbols if isinstance(symbols, Mapping) else set(symbols)
+    found = []
+    for cut, char in enumerate(text):
+        if char != "/":
+            continue
+        a, b = text[:cut].strip(), text[cut + 1:].strip()
+        if a and b and a in known and b in known:
+            found.append((a, b))
+    return found
+
+
+def pair_symbols(label: str, symbols: Mapping[str, object]) -> tuple[str, str] | None:
+    """The two symbols of a pair target's label, or None for a single instrument's or a
+    group's target. A label that is itself a symbol is an instrument ("EUR/USD"); else the
+    first reading of `split_pair`, else the text either side of its first '/'."""
+    if label in symbols:
+        return None
+    readings = split_pair(label, symbols)
+    if readings:
+        return readings[0]
+    a, slash, b = label.partition("/")
+    return (a, b) if slash else None
+
+
 @dataclass(frozen=True)
 class Universe:
     """The desk's instruments and named groups, as the config loader hands them over."""
@@ -288,7 +318,11 @@ def resolve_pairs(reader: TableReader, universe: Universe) -> PairTargets:
         raise reader.error("targets", "no targets: set pairs, group, between or all = true")
     blocks: list[IntArray] = []
     for text in reader.read_names("pairs") or []:
-        parts = [part.strip() for part in text.split("/")]
+        readings = split_pair(text, universe.index)
+        if len(readings) > 1:
+            choices = " or ".join(f"'{a}' with '{b}'" for a, b in readings)
+            raise reader.error("pairs", f"{text!r} is ambiguous: {choices}")
+        parts = list(readings[0]) if readings else [part.strip() for part in text.split("/")]
         if len(parts) != 2 or not all(parts):
             raise reader.error("pairs", f"{text!r} is not a pair written as 'A/B'")
         i = universe.symbol_index(reader, "pairs", parts[0], text)
