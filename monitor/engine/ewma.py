@@ -56,6 +56,7 @@ import numpy as np
 import numpy.typing as npt
 
 from monitor._typing import Returns2D
+from monitor.engine.gappy_ewma import ewma_gappy_days
 from monitor.engine.kernels import (
     STALE_RATIO,
     FloatArray,
@@ -67,7 +68,7 @@ from monitor.engine.kernels import (
     outputs,
     uniform_sums,
 )
-from monitor.engine.layout import BoolArray, Layout
+from monitor.engine.layout import BoolArray, Layout, TileLayout
 from monitor.engine.rolling import overlay
 from monitor.engine.spec import Measure
 from monitor.engine.windows import column_shift
@@ -265,6 +266,10 @@ def ewma_tile(
     dominant = np.zeros(returns.shape[1], dtype=bool)
     dominant[columns] = _dominant_columns(valid[:, columns])
     fast, overrides = layout.split(dominant[layout.left_index], dominant[layout.right_index])
+    if centred and isinstance(layout, TileLayout) and (overrides or not fast):
+        # a tile with gaps: running matrix sums for every pair (monitor.engine.gappy_ewma)
+        yield from ewma_gappy_days(returns, layout, lam, measure.min_count, start, stop, lo)
+        return
     common = valid[:, np.flatnonzero(dominant)[0]] if fast else None
     blocks = [(layout, fast)] + [(sub, False) for sub, _ in overrides]
     states = []

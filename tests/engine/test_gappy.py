@@ -12,7 +12,7 @@ from scipy import stats
 
 from monitor.engine import one_day, stream, tile
 from monitor.engine.stream import RETURN_LIMIT
-from tests.engine_reference import finite_max_difference, reference_rolling
+from tests.engine_reference import finite_max_difference, reference_ewma, reference_rolling
 
 
 def market_panel(rows: int, columns: int, seed: int, markets: int = 3) -> np.ndarray:
@@ -196,3 +196,52 @@ def test_every_day_after_a_burst_of_huge_moves_agrees_with_two_pass() -> None:
                 checked += 1
     assert checked > 5000
     assert worst <= 1e-13
+
+
+@pytest.mark.parametrize("spec", ["ewma:hl=10,min=1", "ewma:hl=21,min=8"])
+def test_gappy_ewma_matches_pandas_ewm_corr_for_every_pair(spec: str) -> None:
+    """pandas DataFrame.ewm(halflife=H).corr() (adjust=True, ignore_na=False): weights on the
+    pair's common days (general-purpose reference)."""
+    returns = market_panel(600, 20, seed=21)
+    half_life = float(spec.split("hl=")[1].split(",")[0])
+    minimum = int(spec.split("min=")[1])
+    value, n, stale = cube(list(stream(returns, spec)))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        expected = pd.DataFrame(returns).ewm(halflife=half_life).corr()
+    expected = expected.to_numpy().reshape(value.shape)
+    assert np.isfinite(value).sum() > 0.5 * value.size
+    assert finite_max_difference(value, expected) <= 1e-10
+    # pandas has a value wherever the engine has one; the engine has none below its minimum
+    # Kish count or on a pair's first common day (one return: no variance, stale)
+    assert np.all(np.isfinite(expected[np.isfinite(value)]))
+    assert np.all(np.isfinite(value) | ~np.isfinite(expected) | stale | (n < minimum))
+
+
+def test_gappy_ewma_matches_the_weighted_two_pass_reference() -> None:
+    returns = market_panel(160, 7, seed=3)
+    returns[60:100, 1] = 0.0  # a stale close
+    lam = 0.5 ** (1 / 8)
+    value, n, stale = cube(list(stream(returns, "ewma:hl=8,min=3")))
+    ref_value, ref_n, ref_stale = reference_ewma(returns, lam, 3)
+    assert finite_max_difference(value, ref_value) <= 1e-11
+    assert np.allclose(n, ref_n, rtol=1e-12, atol=0)
+    assert np.array_equal(np.isnan(value), np.isnan(ref_value))
+
+
+def test_gappy_ewma_rebases_its_growing_weights_over_a_long_history() -> None:
+    """hl=2 grows the stored weights by 2 every 2 rows: several rebases in 3,000 rows; a
+    stream started late (warm start) equals the full pass."""
+    returns = market_panel(3000, 6, seed=17)
+    full = list(stream(returns, "ewma:hl=2,min=1"))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        expected = pd.DataFrame(returns).ewm(halflife=2).corr()
+    expected = expected.to_numpy().reshape((3000, 6, 6))
+    value = np.array([d.value for d in full])
+    assert np.isfinite(value[-1]).all()
+    assert finite_max_difference(value, expected) <= 1e-10
+    late = list(stream(returns, "ewma:hl=2,min=1", start=2500))
+    assert finite_max_difference(np.array([d.value for d in late]), value[2500:]) <= 1e-12
+    # a tile (not symmetric) over 1,000 rows: rebased a few times too
+    tile_days = list(tile(returns, "ewma:hl=2,min=1", [0, 3], [1, 2, 5], start=2000))
+    block = value[2000:][:, [0, 3]][:, :, [1, 2, 5]]
+    assert finite_max_difference(np.array([d.value for d in tile_days]), block) <= 1e-12
