@@ -34,6 +34,7 @@ from monitor.digest.context import (
     MoverView,
     _finite,
 )
+from monitor.digest.feed import FeedFacts, build_feed
 from monitor.digest.order import alert_sort_key
 from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
 from monitor.engine.drivers import measure_drivers
@@ -95,6 +96,10 @@ class DigestInputs:
     data_through: dt.date | None = None
     cards: int = SCREENFUL
     """New alerts shown in full, with their chart and drivers (the strongest first)."""
+    feed: FeedFacts | None = None
+    """Facts of the Data feed block; None leaves the block out."""
+    run_dates: Sequence[dt.date] = ()
+    """Run dates of the schedule up to `as_of`, for "N business days" in the block."""
 
 
 def _instrument(symbol: str, names: Mapping[str, str]) -> Instrument:
@@ -127,8 +132,18 @@ def build_context(inputs: DigestInputs) -> DigestContext:
     day = dates[t] if dates else inputs.as_of
     first_history = max(0, t - inputs.history_days + 1)
     chosen: list[tuple[AlertFacts, str, Rule | None]] = []
+    data_alerts: list[tuple[str, AlertFacts]] = []
+    feed_rule = inputs.feed.feed_rule if inputs.feed is not None else None
     for facts in inputs.alerts:
         if not facts.announced:
+            continue
+        if inputs.feed is not None and (facts.rule == feed_rule or facts.rule_kind == "stale"):
+            # About the data, not a correlation: listed in the Data feed block instead.
+            if facts.state == "cleared" and facts.cleared_on in (day, inputs.as_of):
+                data_alerts.append(("cleared", facts))
+            elif facts.state == "open":
+                new = facts.opened_on in (day, inputs.as_of)
+                data_alerts.append(("new" if new else "open", facts))
             continue
         if facts.state == "cleared" and facts.cleared_on in (day, inputs.as_of):
             # Cleared this evening: listed as cleared, never as new, even when it opened
@@ -173,6 +188,9 @@ def build_context(inputs: DigestInputs) -> DigestContext:
         data_quality=tuple(inputs.data_issues), heatmaps=tuple(heatmaps),
         cross_matrices=tuple(cross_matrices(inputs, matrix, column, t)),
         run_date=inputs.as_of,
+        data_feed=None if inputs.feed is None else build_feed(
+            inputs.as_of, inputs.feed, data_alerts, inputs.names, inputs.run_dates,
+            inputs.generated_at),
     )
 
 

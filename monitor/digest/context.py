@@ -17,6 +17,7 @@ from typing import TypeGuard
 import numpy as np
 
 from monitor._typing import CorrMatrix, Float1D, ReturnKind, Severity
+from monitor.digest.feed import DataFeedView
 from monitor.errors import ConfigError
 from monitor.templating import tuple_fields
 
@@ -511,6 +512,9 @@ class DigestContext:
         Measures, observation counts, return kind, horizon, confidence level.
     version : str
         comove's version.
+    data_feed : DataFeedView or None
+        The Data feed block (data-feed and stale alerts, instruments without a close,
+        refused files); None leaves it out.
     run_date : date or None
         The day the evening run was for, which heads the digest; later than `as_of` when
         that day brought no closes (the numbers are then of `as_of`). None: `as_of`.
@@ -539,6 +543,7 @@ class DigestContext:
     pages_url: str = ""
     cross_matrices: Sequence[CrossMatrixView] = ()
     run_date: date | None = None
+    data_feed: DataFeedView | None = None
 
     def __post_init__(self) -> None:
         tuple_fields(

@@ -117,6 +117,57 @@ def _retracted_issues(store: Store, as_of: dt.date) -> list[Any]:
         f"(comove alerts --all)") for a in rows]
 
 
+def _refused_files(settings: Settings, now: dt.datetime) -> list[Any]:
+    """Closes files the inbox refused in the 24 hours before `now`, from the problems
+    reports beside them in ``rejected/`` (first line: the verdict; then one problem per
+    line, naming file, line, field and value)."""
+    from monitor.digest.feed import REFUSED_PROBLEMS_SHOWN, REFUSED_WINDOW, RefusedFile
+
+    folder = settings.inbox / "rejected"
+    if not folder.is_dir():
+        return []
+    refused = []
+    for report in folder.glob("*.problems.txt"):
+        at = dt.datetime.fromtimestamp(report.stat().st_mtime, dt.UTC)
+        if at < now - REFUSED_WINDOW:
+            continue  # (a file refused by this very run is later than `now`: it is listed)
+        lines = [line for line in report.read_text(encoding="utf-8",
+                                                   errors="replace").splitlines() if line]
+        problems = lines[1:] or lines[:1]
+        more = 0
+        if problems and problems[-1].startswith("... and "):
+            more = int(problems[-1].split()[2]) if problems[-1].split()[2].isdigit() else 0
+            problems = problems[:-1]
+        more += max(0, len(problems) - REFUSED_PROBLEMS_SHOWN)
+        refused.append(RefusedFile(
+            name=report.name.removesuffix(".problems.txt"), refused_at=at,
+            problems=problems[:REFUSED_PROBLEMS_SHOWN], more=more, report=report.name))
+    return sorted(refused, key=lambda f: (f.refused_at, f.name))
+
+
+def _feed_facts(settings: Settings, panel: pd.DataFrame, as_of: dt.date,
+                now: dt.datetime) -> tuple[Any, list[dt.date]]:
+    """What the digest's Data feed block needs, and the run dates it counts days in."""
+    from monitor.calendar import any_market_open, business_days_between
+    from monitor.digest.feed import FeedFacts
+
+    schedule = schedule_of(settings)
+    last_close: dict[str, dt.date | None] = {}
+    for symbol in panel.columns:
+        last = panel[symbol].last_valid_index()
+        last_close[str(symbol)] = None if last is None else pd.Timestamp(last).date()
+    calendars = {i.symbol: i.calendar for i in settings.instruments}
+    expected: list[str] = []
+    if schedule.is_run_date(as_of):
+        open_on = {code: any_market_open([code], as_of)
+                   for code in set(calendars.values())} | {"": True}
+        expected = [s for s in last_close if open_on[calendars.get(s, "")]]
+    known = [d for d in last_close.values() if d is not None]
+    run_dates = business_days_between(schedule, min(known), as_of) if known else []
+    return FeedFacts(last_close=last_close, expected=expected,
+                     refused=_refused_files(settings, now), feed_rule=FEED_RULE), run_dates
+
+
 def digest_context(store: Store, settings: Settings, as_of: dt.date,
                    now: dt.datetime | None = None) -> Any:
     """The digest's context for `as_of` from the store (see monitor.digest.build)."""
@@ -163,6 +214,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
         if a.rule in plan.rule_names and a.opened_on <= day or a.rule == FEED_RULE
     ]
     issues, attention = _data_issues(store, panel, day, as_of, now, schedule_of(settings))
+    feed, run_dates = _feed_facts(settings, panel, as_of, now)
     c = settings.correlation
     inputs = DigestInputs(
         desk=settings.desk.name, as_of=as_of, generated_at=now, returns=returns,
@@ -171,7 +223,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
         horizon=r.horizon, level=c.level, largest_changes_days=c.largest_changes_days,
         group_average_days=c.group_average_days,
         history_days=c.history_days, data_issues=issues, attention=attention,
-        data_through=panel.index[-1].date(),
+        data_through=panel.index[-1].date(), feed=feed, run_dates=run_dates,
     )
     return build_context(inputs)
 

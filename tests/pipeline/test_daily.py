@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import datetime as dt
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -14,6 +15,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from bs4 import BeautifulSoup
 
 from monitor.config import Settings
 from monitor.demo.synthetic import generate
@@ -129,6 +131,40 @@ def test_empty_inbox_on_a_business_day_opens_a_data_alert_and_says_so(
     assert later.feed_event == "continuing" and later.evaluation is not None
     assert (f"; {later.evaluation.opened} opened, {later.evaluation.cleared} cleared"
             in daily._describe_daily(later))
+
+
+def test_a_day_without_closes_shows_the_data_feed_block_not_an_alert_card(
+    desk: tuple[Store, Settings], relay: RecordingRelay
+) -> None:
+    """The data-feed alert is shown as what it is: which instruments have no close, since
+    when, which file was refused and why; never as a correlation card ("[CRITICAL] all",
+    "Held: 0 days")."""
+    store, settings = desk
+    day = LATER_DAYS[0]
+    settings.inbox.mkdir(parents=True, exist_ok=True)
+    (settings.inbox / "late.csv").write_text(
+        f"date,symbol,close\n{day},KLV,minus one\n{day},DUNQ,12.5\n")
+    report = run_daily(store, settings, day, environ={}, send=False)
+    assert report.digest is not None and report.collected is not None
+    assert len(report.collected.rejected) == 1
+    text = (report.digest.folder / "digest.txt").read_text(encoding="utf-8")
+    html = (report.digest.folder / "digest.html").read_text(encoding="utf-8")
+    assert "[CRITICAL] all" not in text and "Held:       0 days" not in text
+    feed = text.split("DATA FEED", 1)[1].split("NEW ALERTS", 1)[0]
+    assert f"[CRITICAL] no closes for {day} by run time" in feed
+    assert "latest closes are from 2023-12-15" in feed
+    for symbol in ("KLV", "DUNQ", "TEZ10"):
+        assert re.search(rf"^  {symbol} +latest close 2023-12-15, 1 business day without", feed,
+                         flags=re.M)
+    assert "late.csv:2: close 'minus one' for KLV" in feed
+    new_part = text.split("NEW ALERTS", 1)[1].split("STILL OPEN", 1)[0]
+    assert "data-feed" not in new_part
+    soup = BeautifulSoup(html, "html.parser")
+    rows = soup.select("#data-feed tr.data-alert")
+    assert [r["data-state"] for r in rows] == ["new"]
+    assert {r["data-symbol"] for r in soup.select("#data-feed tr.missing")} == {
+        "KLV", "DUNQ", "TEZ10"}
+    assert soup.select("#new-alerts table.alert") == []
 
 
 def test_a_rejected_file_is_moved_aside_with_its_report(
