@@ -279,7 +279,7 @@ def test_no_file_content_reaches_an_unforeseen_error() -> None:
     """Random edits of good files (seeded): parse either succeeds or raises IngestError."""
     rng = random.Random(19)
     outcomes = {"ok": 0, "rejected": 0}
-    for _ in range(1500):
+    for _ in range(800):
         text = list(rng.choice([GOOD, WIDE]))
         for _ in range(rng.randint(1, 4)):
             at = rng.randrange(len(text) + 1)
@@ -299,7 +299,7 @@ def test_no_file_content_reaches_an_unforeseen_error() -> None:
         assert all(p.startswith("f.csv:") and "\n" not in p for p in parsed.problems)
         closes = parsed.rows["close"].to_numpy()
         assert ((closes >= MIN_CLOSE) & (closes <= MAX_CLOSE)).all()
-    assert outcomes["ok"] > 100 and outcomes["rejected"] > 100, outcomes
+    assert outcomes["ok"] > 50 and outcomes["rejected"] > 50, outcomes
 
 
 def test_ingest_dash_reads_standard_input(store: Store, settings: Settings,

@@ -98,3 +98,44 @@ def test_a_writer_that_waits_too_long_stops_with_one_line(
 @pytest.fixture(autouse=True)
 def _no_debug(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.delenv("COMOVE_DEBUG", raising=False)
+
+
+def test_ingests_during_a_backfill_wait_their_turn_and_both_finish(
+    tmp_path: Path, write_settings: Callable[..., Settings]
+) -> None:
+    import datetime as dt
+    import os
+
+    from monitor.demo.synthetic import generate
+    from monitor.pipeline import ingest_file
+    from tests.scenarios import INSTRUMENTS, RULES, break_scenario
+
+    settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}", INSTRUMENTS + RULES)
+    store = init_store(settings)
+    closes = generate(break_scenario()).closes
+    closes.index.name = "date"
+    history = tmp_path / "history.csv"
+    closes.to_csv(history, date_format="%Y-%m-%d")
+    ingest_file(store, settings, history, today=dt.date(2024, 1, 5))
+    # One commit per day: the backfill writes hundreds of times while the ingests run.
+    env = {**os.environ, "COMOVE_COMMIT_DAYS": "1"}
+    backfill = subprocess.Popen(
+        [sys.executable, "-m", "monitor", "backfill", "--no-pages", "--config",
+         str(settings.path)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    outcomes = []
+    try:
+        for k, day in enumerate(closes.index[300:303]):
+            path = tmp_path / f"fix{k}.csv"
+            value = float(closes.loc[day, "KLV"]) * 1.001
+            path.write_text(f"date,symbol,close\n{day:%Y-%m-%d},KLV,{value!r}\n",
+                            encoding="utf-8")
+            outcomes.append((_ingest(settings, path), backfill.poll() is None))
+    finally:
+        out, err = backfill.communicate(timeout=600)
+    assert backfill.returncode == 0, err
+    assert "Traceback" not in err and "[SQL" not in err
+    assert any(running for _, running in outcomes), "the backfill ended before any ingest"
+    for done, _ in outcomes:
+        assert done.returncode == 0, done.stderr
+        assert "1 restated" in done.stdout
+    store.dispose()
