@@ -244,3 +244,27 @@ def test_a_rule_over_every_pair_of_3000_instruments_loads_without_writing_labels
     labels = rule.targets.labels
     assert isinstance(labels, PairLabels) and len(labels) == 3000 * 2999 // 2
     assert labels[-1] == "S2998/S2999" and rule.targets.position("S0001/S0003") == 3000
+
+
+def test_the_rules_checked_at_load_are_the_rules_the_command_runs(tmp_path: Path) -> None:
+    from monitor.rules import LevelRule, Rule, build_rules
+
+    path = tmp_path / "comove.toml"
+    path.write_text('[[instruments]]\nsymbol = "KLV"\n[[instruments]]\nsymbol = "ORMA"\n'
+                    '[[rules]]\nname = "low"\nkind = "level"\nall = true\nbelow = 0.2\n')
+    settings = load_settings(path)
+
+    def build(tables: list[dict[str, object]]) -> list[Rule]:
+        return build_rules(tables, symbols=settings.symbols, groups=settings.groups,
+                           default_measure=settings.correlation.default_measure,
+                           max_window=settings.correlation.max_window)
+
+    from monitor.rules import registry
+
+    first = build(list(settings.rule_tables))
+    assert any(first[0] is built[0] for built in registry._BUILT.values())  # from the load
+    assert build(list(settings.rule_tables))[0] is first[0]  # built once, at load
+    changed = [dict(settings.rule_tables[0], below=0.1)]
+    assert build(changed)[0] is not first[0]
+    rebuilt = build(changed)[0]
+    assert isinstance(rebuilt, LevelRule) and rebuilt.threshold.level == 0.1

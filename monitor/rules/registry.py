@@ -85,6 +85,9 @@ def build_rules(
     ConfigError
         The first problem found, as one line naming the rule and key.
     """
+    key = _memo_key(tables, symbols, groups, default_measure, max_window)
+    if key in _BUILT:
+        return list(_BUILT[key])
     universe = Universe.build(symbols, groups)
     rules: list[Rule] = []
     seen: dict[str, int] = {}
@@ -92,7 +95,28 @@ def build_rules(
         rule = _build_one(table, index, universe, default_measure, seen, max_window)
         assert rule is not None
         rules.append(rule)
+    _remember(key, rules)
     return rules
+
+
+_BUILT: dict[tuple[object, ...], tuple[Rule, ...]] = {}
+"""Rules built lately, by their inputs: loading the settings checks the rules by building
+them, and the command then asks for the same rules again (at 3,000 instruments a rule over
+every pair resolves 4.5 million pairs; once is enough). Rules are immutable."""
+
+
+def _memo_key(tables: Sequence[object], symbols: Sequence[str],
+              groups: Mapping[str, Sequence[str]], default_measure: str | None,
+              max_window: int | None) -> tuple[object, ...]:
+    return (repr(list(tables)), tuple(symbols),
+            repr(sorted((name, list(members)) for name, members in groups.items())),
+            default_measure, max_window)
+
+
+def _remember(key: tuple[object, ...], rules: Sequence[Rule]) -> None:
+    while len(_BUILT) >= 4:
+        del _BUILT[next(iter(_BUILT))]
+    _BUILT[key] = tuple(rules)
 
 
 def _build_one(table: object, index: int, universe: Universe | None,
@@ -143,11 +167,17 @@ def rule_problems(
             return [str(exc)]
     problems: list[str] = []
     seen: dict[str, int] = {}
+    rules: list[Rule] = []
     for index, table in enumerate(tables):
         try:
-            _build_one(table, index, universe, default_measure, seen, max_window)
+            rule = _build_one(table, index, universe, default_measure, seen, max_window)
         except ConfigError as exc:
             problems.append(str(exc))
+            continue
+        if rule is not None:
+            rules.append(rule)
+    if symbols is not None and not problems:
+        _remember(_memo_key(tables, symbols, groups, default_measure, max_window), rules)
     return problems
 
 

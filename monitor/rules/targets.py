@@ -310,7 +310,7 @@ def resolve_pairs(reader: TableReader, universe: Universe) -> PairTargets:
         if chosen:
             raise reader.error("all", f"all = true cannot be combined with {chosen[0]}")
         first, second = np.triu_indices(n, k=1)
-        pairs = np.column_stack([first, second]).astype(np.int64)
+        pairs = np.column_stack([first, second]).astype(np.int64, copy=False)
         if pairs.shape[0] == 0:
             raise reader.error("all", "the desk has fewer than two instruments, no pairs")
         return PairTargets(labels=_pair_labels(pairs, universe.symbols), pairs=pairs)
