@@ -64,3 +64,43 @@ def stale_inputs(closes: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     changed = has & ~(filled == previous)
     last_change = pd.DataFrame(np.where(changed, rows, np.nan)).ffill().to_numpy()
     return rows - last_close, rows - last_change
+
+
+def calendar_losses(returns: np.ndarray, pairs: np.ndarray, window: int
+                    ) -> tuple[np.ndarray, np.ndarray]:
+    """For each pair, the dates its latest window lost to calendar differences.
+
+    A pair's window is its last ``window`` own dates (rows where both have a return, see
+    :mod:`monitor.engine.pairdates`) up to the last row. A row inside the window's span on
+    which only one side has a return (the other's market was shut, or it has no close)
+    is not a date of the pair: the side that traded loses that day's return (the other
+    side's next return spans it).
+
+    Parameters
+    ----------
+    returns : float array (T, N), NaN = no return
+    pairs : int array (P, 2)
+    window : int >= 1
+
+    Returns
+    -------
+    lost : int array (P,)
+        Rows in the span of the window with a return on one side only.
+    first : int array (P,)
+        First row of the window's span (-1 for a pair with no own date yet).
+    """
+    values = np.asarray(returns, dtype=np.float64)
+    index = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
+    present = ~np.isnan(values)
+    left, right = present[:, index[:, 0]], present[:, index[:, 1]]
+    both = left & right
+    either = left ^ right
+    # row where each pair's last `window` own dates begin: count own dates from the end
+    from_end = np.cumsum(both[::-1], axis=0)[::-1]
+    inside = from_end <= window
+    has = np.asarray(both.any(axis=0), dtype=bool)
+    first = np.where(has, np.argmax(inside & both, axis=0), -1)
+    rows = np.arange(values.shape[0])[:, None]
+    span = (rows >= first[None, :]) & has[None, :]
+    lost = (either & span).sum(axis=0)
+    return lost.astype(np.int64), first.astype(np.int64)

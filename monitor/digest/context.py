@@ -349,7 +349,9 @@ class DataIssueView:
         "stale" (no new close), "missing" (no close at all), "suspect" (a tick that looks
         wrong), "restated" (a close changed after it was first stored) or "retracted" (an
         alert announced earlier that a rerun on changed closes no longer produces; `symbol`
-        is then the alert's target and `day` its opened day).
+        is then the alert's target and `day` its opened day) or "calendar" (a monitored
+        pair's window lost dates because one side had a close and the other had none;
+        `symbol` is then the pair, "A/B").
     symbol : str
         The instrument.
     day : date or None

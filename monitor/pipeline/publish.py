@@ -7,7 +7,7 @@ from __future__ import annotations
 import datetime as dt
 import logging
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -97,6 +97,46 @@ def _data_issues(store: Store, panel: pd.DataFrame, day: dt.date, as_of: dt.date
         count = len({i.symbol for i in issues if i.kind in ("stale", "missing")})
         attention = f"{count} instrument(s) have stale or missing closes; see Data quality."
     return issues, attention
+
+
+CALENDAR_PAIRS_LISTED = 5
+"""Pairs named one by one in the digest's calendar note; the rest are counted."""
+
+
+def _calendar_issues(returns: pd.DataFrame, pairs: np.ndarray, measures: Sequence[str],
+                     day: dt.date) -> list[Any]:
+    """Data-quality lines for monitored pairs whose latest window lost dates because one
+    side had a close and the other had none (different market holidays), instead of
+    silence: the worst few by name, the others counted."""
+    from monitor.data.quality import calendar_losses
+    from monitor.digest import DataIssueView
+    from monitor.engine import parse_measure
+
+    if returns.empty or not len(pairs):
+        return []
+    windows = [parse_measure(m).window for m in measures]
+    measure, window = next(((m, w) for m, w in zip(measures, windows, strict=True) if w),
+                           ("a 63-date window", 63))
+    lost, _ = calendar_losses(returns.to_numpy(dtype=np.float64), pairs, int(window))
+    affected = np.flatnonzero(lost > 0)
+    if not affected.size:
+        return []
+    symbols = [str(c) for c in returns.columns]
+    order = affected[np.argsort(-lost[affected], kind="stable")]
+    issues = [
+        DataIssueView("calendar", f"{symbols[pairs[k, 0]]}/{symbols[pairs[k, 1]]}", day,
+                      f"{measure} window spans {int(lost[k])} day"
+                      f"{'' if lost[k] == 1 else 's'} with a close on one side only "
+                      "(market holidays differ); the pair uses its common dates, the other "
+                      "side's return spans the closure")
+        for k in order[:CALENDAR_PAIRS_LISTED]
+    ]
+    more = order.size - CALENDAR_PAIRS_LISTED
+    if more > 0:
+        issues.append(DataIssueView(
+            "calendar", f"{more} more pair{'' if more == 1 else 's'}", day,
+            f"also lost dates to calendar differences in the {measure} window"))
+    return issues
 
 
 def _retracted_issues(store: Store, as_of: dt.date) -> list[Any]:
@@ -215,6 +255,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
     ]
     issues, attention = _data_issues(store, panel, day, as_of, now, schedule_of(settings))
     feed, run_dates = _feed_facts(settings, panel, as_of, now)
+    issues += _calendar_issues(returns, plan.pairs, settings.correlation.measures, day)
     c = settings.correlation
     inputs = DigestInputs(
         desk=settings.desk.name, as_of=as_of, generated_at=now, returns=returns,

@@ -166,3 +166,34 @@ def test_the_alert_the_series_calls_is_opened(desk: tuple[Store, Settings]) -> N
     assert alerts, "the level rule must open on the day the series goes below 0.90"
     assert alerts[0].opened_on == below.index[0]
     assert alerts[0].target == "KLV/DUNQ"
+
+
+def test_the_digest_notes_windows_that_lost_days_to_calendar_differences(
+    desk: tuple[Store, Settings]
+) -> None:
+    from monitor.data.quality import calendar_losses
+    from monitor.pipeline import digest_context
+
+    store, settings = desk
+    closes = _closes()
+    last = closes.index[-1].date()
+    context = digest_context(store, settings, last,
+                             now=dt.datetime(2023, 1, 2, 18, tzinfo=dt.UTC))
+    notes = {issue.symbol: issue for issue in context.data_quality if issue.kind == "calendar"}
+    # the equity pair shares its calendar: nothing lost; the pairs across calendars lost
+    # exactly the dates on which one side had a return and the other none
+    assert "KLV/DUNQ" not in notes
+    present = closes.notna().to_numpy()[1:]  # a return wherever there is a close (max_gap 5)
+    for label, issue in notes.items():
+        a, b = label.split("/")
+        i, j = SYMBOLS.index(a), SYMBOLS.index(b)
+        # reference: a plain walk back over the pair's last 63 common dates
+        both = present[:, i] & present[:, j]
+        rows = np.flatnonzero(both)[-63:]
+        span = present[rows[0]:, [i, j]]
+        expected = int((span[:, 0] != span[:, 1]).sum())
+        assert f"spans {expected} day" in issue.detail, (label, issue.detail)
+        assert "rolling:63" in issue.detail
+    assert {"KLV/TEZ10", "DUNQ/TEZ10", "TEZ10/VARO"} <= set(notes)
+    lost, _ = calendar_losses(np.where(present, 0.0, np.nan), np.array([[0, 1], [0, 2]]), 63)
+    assert lost[0] == 0 and lost[1] > 0
