@@ -662,6 +662,7 @@ BENCHES = {
     "backfill": "monitor.bench.backfill_speed",
     "pages": "monitor.bench.pages_speed",
     "alerts": "monitor.bench.alert_quality",
+    "scale": "monitor.bench.daily_scale",
 }
 
 

@@ -59,6 +59,14 @@ def _positive(value: Any) -> str | None:
     return None if value > 0 else "a number > 0"
 
 
+def _pair_labels(value: Any) -> str | None:
+    for item in value:
+        a, slash, b = str(item).partition("/")
+        if not slash or not a.strip() or not b.strip() or "/" in b:
+            return "pairs written \"A/B\" (two symbols and one slash)"
+    return None
+
+
 def _at_least(low: int) -> Check:
     def check(value: Any) -> str | None:
         return None if value >= low else f"an integer >= {low}"
@@ -101,6 +109,14 @@ class DeskSettings:
     """[desk]: who the monitor works for."""
 
     name: str = setting("Desk", "Name of the desk, shown in the digest and the pages.")
+    watch: tuple[str, ...] = setting(
+        [], "Pairs \"A/B\" whose history page is always built with its charts, alert or "
+        "not.", kind=list, item=str, check=_pair_labels)
+    charted_pairs: int = setting(
+        250, "Most pairs, besides the watch list, whose history pages carry charts: those "
+        "with open alerts first (most severe, latest), then by their latest alert; the "
+        "others' pages list their alerts and events without charts.", kind=int,
+        check=_at_least(0))
     timezone: str = setting(
         "UTC",
         "IANA time zone of the desk; decides what 'today' is (closes dated later are refused).",

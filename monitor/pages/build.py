@@ -68,16 +68,71 @@ class SiteInputs:
     return_kind: str
     level: float
     mutes: Sequence[Mapping[str, Any]] = ()  # storage.alerts.list_mutes rows
+    watch: Sequence[str] = ()
+    """Pairs "A/B" whose page always carries charts, alert or not (`[desk] watch`)."""
+    charted_pairs: int = 250
+    """Most pairs with charts besides the watch list (`[desk] charted_pairs`)."""
 
 
-def _history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.date],
-             level: float, levels: Sequence[float] = ()) -> MeasureHistory:
-    days = list(stream_on_pair_dates(matrix[:, cols], measure, np.array([[0, 1]]),
-                                     level=level))
-    return MeasureHistory(
-        measure=measure, dates=dates, values=np.array([d.value[0] for d in days]),
-        band_low=np.array([d.low[0] for d in days]),
-        band_high=np.array([d.high[0] for d in days]), levels=tuple(levels))
+def _histories(matrix: np.ndarray, column: Mapping[str, int],
+               split_of: Mapping[str, tuple[str, str]],
+               requests: Mapping[str, Sequence[tuple[str, Sequence[float]]]],
+               dates: list[dt.date], level: float) -> dict[str, list[MeasureHistory]]:
+    """Each charted pair's measure histories, one engine call per measure for all pairs."""
+    by_measure: dict[str, list[str]] = {}
+    for label, wanted in requests.items():
+        for measure, _ in wanted:
+            by_measure.setdefault(measure, []).append(label)
+    series: dict[tuple[str, str], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+    for measure, labels in by_measure.items():
+        pairs = np.array([[column[s] for s in split_of[label]] for label in labels],
+                         dtype=np.int64)
+        values = np.full((len(dates), len(labels)), np.nan)
+        lows, highs = values.copy(), values.copy()
+        for k, day in enumerate(stream_on_pair_dates(matrix, measure, pairs, level=level)):
+            values[k], lows[k], highs[k] = day.value, day.low, day.high
+        for j, label in enumerate(labels):
+            series[(label, measure)] = (values[:, j], lows[:, j], highs[:, j])
+    return {
+        label: [MeasureHistory(measure=measure, dates=dates,
+                               values=series[(label, measure)][0],
+                               band_low=series[(label, measure)][1],
+                               band_high=series[(label, measure)][2], levels=tuple(levels))
+                for measure, levels in wanted]
+        for label, wanted in requests.items()
+    }
+
+
+def _canonical_label(label: str, column: Mapping[str, int]) -> str:
+    """A watched pair as the alerts name it ("A/B" in the desk's column order); "" when
+    either symbol is not in the store."""
+    split = pair_symbols(label, column)
+    if split is None:
+        return ""
+    a, b = split
+    if a not in column or b not in column or a == b:
+        return ""
+    return f"{a}/{b}" if column[a] < column[b] else f"{b}/{a}"
+
+
+SEVERITY_ORDER = {"critical": 0, "warning": 1, "info": 2}
+
+
+def _charted(labels: Sequence[str], by_target: Mapping[str, Sequence[Any]],
+             watched: set[str], limit: int) -> set[str]:
+    """The pairs whose pages carry charts: the watch list, then up to `limit` others,
+    those with an open alert first (most severe, most recently opened), then by their
+    latest alert."""
+    def rank(label: str) -> tuple[Any, ...]:
+        alerts = by_target.get(label, ())
+        live = [a for a in alerts if a.state == "open"]
+        severity = min((SEVERITY_ORDER.get(a.severity, 3) for a in live or alerts), default=3)
+        latest = max((a.cleared_on or a.opened_on for a in alerts), default=dt.date.min)
+        opened = max((a.opened_on for a in live), default=dt.date.min)
+        return (0 if live else 1, severity, -opened.toordinal(), -latest.toordinal(), label)
+
+    others = sorted((label for label in labels if label not in watched), key=rank)
+    return watched | set(others[:max(0, limit)])
 
 
 def _group_history(matrix: np.ndarray, cols: list[int], measure: str, dates: list[dt.date],
@@ -147,40 +202,57 @@ def build_site_context(inputs: SiteInputs) -> SiteContext:
         ))
         by_target.setdefault(alert.target, []).append(alert)
 
+    watched_labels = [_canonical_label(label, column) for label in inputs.watch]
     pair_labels = list(dict.fromkeys(
-        [a.target for a in inputs.alerts if pair_symbols(a.target, column) is not None]
+        [label for label in watched_labels if label]
+        + [a.target for a in inputs.alerts if pair_symbols(a.target, column) is not None]
         + [label for rule in inputs.rules if isinstance(rule.targets, PairTargets)
            and _declared_pairs(inputs.rule_tables, rule.name)
            for label in rule.targets.labels]))
-    pairs = []
+    split_of: dict[str, tuple[str, str]] = {}
     for label in pair_labels:
         split = pair_symbols(label, column)
-        if split is None:
-            continue
-        a, b = split
-        if a not in column or b not in column:
+        if split is not None and split[0] in column and split[1] in column:
+            split_of[label] = split
+    pair_labels = [label for label in pair_labels if label in split_of]
+    charted = _charted(pair_labels, by_target, set(filter(None, watched_labels)),
+                       inputs.charted_pairs)
+    declared = [rule for rule in inputs.rules if isinstance(rule.targets, PairTargets)]
+    requests: dict[str, list[tuple[str, list[float]]]] = {}
+    for label in pair_labels:
+        if label not in charted:
             continue
         alerts = by_target.get(label, [])
-        watched = [rules[r.rule] for r in alerts if r.rule in rules]
-        watched += [rule for rule in inputs.rules
-                    if isinstance(rule.targets, PairTargets) and label in rule.targets.labels]
+        watching = [rules[r.rule] for r in alerts if r.rule in rules]
+        watching += [rule for rule in declared if label in rule.targets.labels]
         measure_levels: dict[str, list[float]] = {m: [] for m in inputs.measures}
-        for rule in watched:
+        for rule in watching:
             for text in rule.measures():
                 measure_levels.setdefault(text, [])
                 for level in _levels(rule):
                     if level not in measure_levels[text]:
                         measure_levels[text].append(level)
+        requests[label] = list(measure_levels.items())
+    histories = _histories(matrix, column, split_of, requests, dates, inputs.level)
+    uncharted_note = (
+        f"Charts are drawn for the watch list and the {inputs.charted_pairs:,} pairs with the "
+        "most pressing alerts ([desk] watch, charted_pairs); this pair's alerts and events are "
+        "listed below. `comove series` prints its history.")
+    pairs = []
+    for label in pair_labels:
+        a, b = split_of[label]
+        alerts = by_target.get(label, [])
         cols = [column[a], column[b]]
-        histories = [_history(matrix, cols, m, dates, inputs.level, levels)
-                     for m, levels in measure_levels.items()]
+        shown = label in charted
         pairs.append(PairPage(
             a=InstrumentView(a, inputs.names.get(a, ""), group_of.get(a, "")),
             b=InstrumentView(b, inputs.names.get(b, ""), group_of.get(b, "")),
-            measures=histories, spans=_spans(alerts, rules), events=_events(alerts,
-                                                                           events_by_alert),
+            measures=histories.get(label, []), spans=_spans(alerts, rules),
+            events=_events(alerts, events_by_alert),
             acknowledgements=_acks(alerts, acks_by_alert),
-            drivers=[_drivers(alert, matrix, cols, dates, rules) for alert in alerts],
+            drivers=[_drivers(alert, matrix, cols, dates, rules) for alert in alerts]
+            if shown else [],
+            note="" if shown else uncharted_note,
         ))
 
     targets = []

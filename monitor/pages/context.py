@@ -135,6 +135,8 @@ class PairPage:
         Acknowledgements and notes.
     drivers : tuple of DriversView
         Driver days, one entry per alert.
+    note : str
+        A line above the page's tables ("" for none), e.g. why it carries no charts.
     """
 
     a: InstrumentView
@@ -144,6 +146,7 @@ class PairPage:
     events: Sequence[EventView] = ()
     acknowledgements: Sequence[AckView] = ()
     drivers: Sequence[DriversView] = ()
+    note: str = ""
 
     def __post_init__(self) -> None:
         tuple_fields(self, "measures", "spans", "events", "acknowledgements", "drivers")

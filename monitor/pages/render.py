@@ -182,7 +182,7 @@ class _SiteRenderer:
             self._history_page(
                 path=path, kind="pair", title=page.label,
                 heading=f"{page.a.symbol} and {page.b.symbol}",
-                instruments=(page.a, page.b), members=(), note="",
+                instruments=(page.a, page.b), members=(), note=page.note,
                 measures=page.measures, spans=page.spans, events=page.events,
                 acknowledgements=page.acknowledgements, drivers=page.drivers,
                 rows=by_target.get(path, []), symbols=(page.a.symbol, page.b.symbol),

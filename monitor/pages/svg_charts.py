@@ -28,7 +28,7 @@ import io
 import math
 import multiprocessing
 import threading
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 from datetime import date
@@ -355,7 +355,8 @@ PARALLEL_MINIMUM = 64
 
 
 def render_history_charts(
-    requests: Sequence[HistoryChartRequest], workers: int = 1
+    requests: Sequence[HistoryChartRequest], workers: int = 1,
+    progress: Callable[[int, int], None] | None = None,
 ) -> list[SvgChart]:
     """Draw many charts, in this process or in a pool of worker processes.
 
@@ -367,18 +368,34 @@ def render_history_charts(
         Processes to use; 1 (or fewer than `PARALLEL_MINIMUM` charts) draws here. Workers
         are started with "spawn", never "fork", so a caller's threads (a server, a
         browser driver) cannot leave a lock held in the child.
+    progress : callable, optional
+        Called as ``progress(done, total)`` about every 10 % of the charts and at the end.
 
     Returns
     -------
     list of SvgChart
         One per request, in the same order; identical bytes whichever way they were drawn.
     """
-    if workers <= 1 or len(requests) < PARALLEL_MINIMUM:
-        return [render_request(request) for request in requests]
+    total = len(requests)
+    step = max(1, total // 10)
+
+    def told(done: int) -> None:
+        if progress is not None and (done % step == 0 or done == total):
+            progress(done, total)
+
+    if workers <= 1 or total < PARALLEL_MINIMUM:
+        drawn = []
+        for request in requests:
+            drawn.append(render_request(request))
+            told(len(drawn))
+        return drawn
     context: Any = multiprocessing.get_context("spawn")
-    chunk = max(1, len(requests) // (workers * 8))
+    chunk = max(1, total // (workers * 8))
+    svgs: list[bytes] = []
     with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
-        svgs = list(pool.map(_render_svg, requests, chunksize=chunk))
+        for svg in pool.map(_render_svg, requests, chunksize=chunk):
+            svgs.append(svg)
+            told(len(svgs))
     return [SvgChart(svg=svg, width=CHART_WIDTH, height=CHART_HEIGHT) for svg in svgs]
 
 

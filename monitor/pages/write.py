@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import logging
 import os
 import tempfile
 from collections.abc import Iterator
@@ -24,6 +25,8 @@ from monitor.pages import svg_charts
 from monitor.pages.context import SiteContext
 from monitor.pages.paths import check_relative_path
 from monitor.pages.render import render_pages
+
+LOG = logging.getLogger("comove.pages")
 
 MANIFEST_NAME = ".comove-pages.json"
 """List of the files the last build wrote; a rebuild removes those it no longer writes."""
@@ -218,8 +221,15 @@ def _write_site(ctx: SiteContext, folder: Path, pages: dict[str, bytes],
             unchanged += 1
         else:
             to_draw.append(path)
+    LOG.info("pages: %d files, %d charts to draw (%d unchanged)", len(pages), len(to_draw),
+             unchanged)
+
+    def progress(done: int, total: int) -> None:
+        LOG.info("pages: %d of %d charts drawn", done, total)
+
     drawn = svg_charts.render_history_charts(
-        [charts[p] for p in to_draw], workers=_default_workers() if workers is None else workers
+        [charts[p] for p in to_draw], workers=_default_workers() if workers is None else workers,
+        progress=progress,
     )
     for path, chart in zip(to_draw, drawn, strict=True):
         chart_record[path] = (charts[path].cache_key(), hashlib.sha256(chart.svg).hexdigest())

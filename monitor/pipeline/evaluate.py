@@ -33,12 +33,18 @@ from monitor.errors import ComoveError, ConfigError
 from monitor.pipeline.lease import evaluation_lease
 from monitor.pipeline.store import read_closes, universe
 from monitor.rules import Rule, build_rules
+from monitor.rules.targets import PairTargets
 from storage import Store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
 from storage import runs as runs_store
 
 LOG = logging.getLogger("comove.evaluate")
+
+
+MANY_PAIRS = 1_000_000
+"""A rule watching this many pairs or more is named in a warning when the rules load."""
+_WARNED: set[tuple[str, int]] = set()
 
 
 def build_plan(settings: Settings, symbols: Sequence[str],
@@ -57,6 +63,15 @@ def build_plan(settings: Settings, symbols: Sequence[str],
                 near = f"; did you mean '{hint[0]}'?" if hint else ""
                 raise ConfigError(f"--rule: no rule named {name!r}{near}")
         rules = [rule for rule in rules if rule.name in set(rule_names)]
+    for rule in rules:
+        size = len(rule.targets)
+        if isinstance(rule.targets, PairTargets) and size >= MANY_PAIRS and (
+                (rule.name, size) not in _WARNED):
+            _WARNED.add((rule.name, size))
+            LOG.warning("rule %s watches %s pairs: a backfill takes minutes and gigabytes, "
+                        "and the digest and pages summarise its alerts (name pairs, a "
+                        "group or between two groups to watch fewer)", rule.name,
+                        f"{len(rule.targets):,}")
     return make_plan(rules, symbols, level=settings.correlation.level)
 
 

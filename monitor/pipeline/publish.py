@@ -454,9 +454,15 @@ def build_pages(store: Store, settings: Settings, out_dir: Path,
         rules=plan.rules, rule_tables=settings.rule_tables,
         alerts=alerts, events=events, acknowledgements=acks, runs=runs, digests=links,
         measures=settings.correlation.measures, return_kind=settings.returns.kind,
-        level=settings.correlation.level, mutes=mutes,
+        level=settings.correlation.level, mutes=mutes, watch=settings.desk.watch,
+        charted_pairs=settings.desk.charted_pairs,
     )
-    return build_site(build_site_context(inputs), out_dir)
+    LOG.info("pages: %d alerts, %d events; computing the pairs' histories", len(alerts),
+             len(events))
+    ctx = build_site_context(inputs)
+    LOG.info("pages: %d pair pages (%d with charts), %d other targets", len(ctx.pairs),
+             sum(1 for page in ctx.pairs if page.measures), len(ctx.targets))
+    return build_site(ctx, out_dir)
 
 
 def _digest_subject(folder: Path) -> str:
