@@ -116,3 +116,15 @@ def test_largest_changes_are_the_top_ten_of_a_full_sort() -> None:
         top = _largest(values, 10)
         assert len(top) == min(10, size)
         np.testing.assert_array_equal(values[top], np.sort(values)[::-1][:10])
+
+
+def test_largest_changes_by_slices_equal_the_whole(monkeypatch: pytest.MonkeyPatch) -> None:
+    from monitor.digest import build
+
+    inputs, _ = _inputs()
+    whole = build_context(inputs).movers
+    monkeypatch.setattr(build, "MOVERS_SLICE", 7)  # 276 pairs in 40 slices
+    sliced = build_context(inputs).movers
+    assert len(whole) == 10
+    assert [(m.pair, m.value_now, m.value_before) for m in sliced] == [
+        (m.pair, m.value_now, m.value_before) for m in whole]
