@@ -110,7 +110,8 @@ def _rules(checked: SettingsCheck) -> list[str]:
     try:
         rules = build_rules(list(settings.rule_tables), symbols=settings.symbols,
                             groups=settings.groups,
-                            default_measure=settings.correlation.default_measure)
+                            default_measure=settings.correlation.default_measure,
+                            max_window=settings.correlation.max_window)  # as at load: reused
     except ConfigError:  # already among the problems
         return lines
     for rule in rules:
