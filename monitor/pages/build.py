@@ -362,6 +362,11 @@ def _events(alerts: Sequence[Any], by_alert: Mapping[int, Sequence[Mapping[str, 
                 day=e["date"], alert_id=a.id, rule_name=a.rule, kind=e["event"],
                 value=_num(e["value"]), level=_opt(e["level"]), band_low=_num(e["low"]),
                 band_high=_num(e["high"]), p_value=_opt(e["p"]), observations=_opt(e["n"])))
+        retracted_on = getattr(a, "retracted_on", None)
+        if a.state == "retracted" and retracted_on is not None:
+            out.append(EventView(day=retracted_on, alert_id=a.id, rule_name=a.rule,
+                                 kind="retracted", value=math.nan,
+                                 detail=getattr(a, "retracted_reason", None) or ""))
     return sorted(out, key=lambda e: (e.day, str(e.alert_id)))
 
 

@@ -24,7 +24,7 @@ AlertState = Literal["open", "cleared", "retracted"]
 TargetKind = Literal["pair", "group", "instrument"]
 
 
-EventKind = Literal["opened", "continuing", "cleared"]
+EventKind = Literal["opened", "continuing", "cleared", "retracted"]
 
 
 RunKind = Literal["daily", "backfill"]
@@ -50,7 +50,7 @@ SEVERITIES: tuple[str, ...] = ("critical", "warning", "info")
 TARGET_KINDS: tuple[str, ...] = ("pair", "group", "instrument")
 
 
-EVENT_KINDS: tuple[str, ...] = ("opened", "continuing", "cleared")
+EVENT_KINDS: tuple[str, ...] = ("opened", "continuing", "cleared", "retracted")
 
 
 RUN_KINDS: tuple[str, ...] = ("daily", "backfill")
@@ -271,8 +271,10 @@ class EventView:
         The alert.
     rule_name : str
         The rule.
-    kind : {"opened", "continuing", "cleared"}
-        What happened; "continuing" is a reminder that the alert is still open.
+    kind : {"opened", "continuing", "cleared", "retracted"}
+        What happened; "continuing" is a reminder that the alert is still open;
+        "retracted": a rerun on changed closes no longer produces the alert (the day it
+        was retracted, with `detail` saying why).
     value : float
         The measure that day (NaN when unknown).
     level : float or None
@@ -283,6 +285,8 @@ class EventView:
         For shift rules: probability of a change at least this large with no real change.
     observations : float or None
         Observation count n (or Kish effective count for EWMA) behind `value`.
+    detail : str
+        One more sentence for a person (why a retracted alert was retracted); "" for none.
     """
 
     day: date
@@ -295,6 +299,7 @@ class EventView:
     band_high: float = math.nan
     p_value: float | None = None
     observations: float | None = None
+    detail: str = ""
 
     def __post_init__(self) -> None:
         check_word("kind", self.kind, EVENT_KINDS)

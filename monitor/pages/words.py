@@ -14,6 +14,7 @@ EVENT_WORDS: dict[str, str] = {
     "opened": "opened",
     "continuing": "still open (reminder)",
     "cleared": "cleared",
+    "retracted": "retracted (a rerun no longer produces it)",
 }
 """How each event kind is written in the event tables."""
 

@@ -155,3 +155,29 @@ def test_the_day_of_a_retraction_from_the_shell_is_today_so_the_next_digest_list
     assert shell.on == now.date() and "forced rerun" in shell.reason
     evening = _retraction(None, saved, None, False, "evaluation", SPIKE, now)
     assert evening.on == SPIKE
+
+
+def test_the_pair_page_tells_the_retraction_and_why(
+    desk: tuple[Store, Settings], closes: pd.DataFrame, tmp_path: Path
+) -> None:
+    from bs4 import BeautifulSoup
+
+    from monitor.pipeline import build_pages
+
+    store, settings = desk
+    run_daily(store, settings, SPIKE, send=False)
+    [alert] = [a for a in _spike_alerts(store) if a.opened_on == SPIKE]
+    _restate_and_next_day(settings, closes)
+    run_daily(store, settings, NEXT, send=False)
+    site = tmp_path / "site"
+    build_pages(store, settings, site)
+    rows = []
+    for page in (site / "pairs").glob("*.html"):
+        soup = BeautifulSoup(page.read_text(encoding="utf-8"), "html.parser")
+        rows += [row for row in soup.select("tr.event-row[data-kind=retracted]")]
+    [row] = rows
+    cells = [cell.get_text(" ", strip=True) for cell in row.find_all("td")]
+    assert cells[0] == str(NEXT) and str(alert.id) in cells[1]
+    assert cells[3].startswith("retracted (a rerun no longer produces it): closes from "
+                               f"{SPIKE} on were restated")
+    assert "correction.csv" in cells[3]
