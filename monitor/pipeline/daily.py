@@ -73,6 +73,10 @@ def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = N
             report.rejected.append((target, lines[0]))
             continue
         _move(path, inbox / "processed")
+        if result.notes:
+            # An empty close is no close, not an error; the gap is still said out loud.
+            LOG.warning("%s: %d empty close(s) read as no close (first: %s)", path.name,
+                        len(result.notes), result.notes[0])
         report.accepted.append(result)
     return report
 

@@ -330,3 +330,25 @@ def test_many_bad_rows_print_the_first_problems_and_a_count(
     assert len(err) == PROBLEMS_SHOWN + 2
     assert err[PROBLEMS_SHOWN] == f"... and {5000 - PROBLEMS_SHOWN} more problem(s)"
     assert err[-1].startswith("Error: bad.csv: 5000 bad value(s) on 5000 line(s)")
+
+
+def test_the_inbox_says_when_a_file_had_empty_closes(
+    store: Store, settings: Settings, caplog: pytest.LogCaptureFixture
+) -> None:
+    import logging
+
+    inbox = settings.inbox
+    inbox.mkdir(parents=True, exist_ok=True)
+    _write(inbox / "day.csv", "date,symbol,close\n2024-03-04,KLV,100\n2024-03-04,ORMA,\n")
+    comove = logging.getLogger("comove")
+    before = comove.propagate
+    comove.propagate = True  # the command line's handler stops it; caplog listens at the root
+    try:
+        with caplog.at_level(logging.WARNING, logger="comove"):
+            collected = collect_inbox(store, settings, today=TODAY)
+    finally:
+        comove.propagate = before
+    assert [Path(r.file).name for r in collected.accepted] == ["day.csv"]
+    assert any(r.getMessage() == "day.csv: 1 empty close(s) read as no close (first: "
+               "day.csv:3: close is empty for ORMA on 2024-03-04; read as no close that day)"
+               for r in caplog.records)
