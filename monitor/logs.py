@@ -20,6 +20,28 @@ LOG_BACKUPS = 5
 _OUR_HANDLER = "_comove_handler"
 
 
+class _CurrentStream(logging.StreamHandler):  # type: ignore[type-arg]
+    """A console handler that writes to `sys.stdout` or `sys.stderr` as it is at each line.
+
+    A plain StreamHandler keeps the stream it was given, so a handler made while the
+    standard stream was replaced (a test's capture, a wrapper that redirects output) goes
+    on writing to that stream after it is closed, and every later line becomes a logging
+    error. Looking the stream up per line follows whatever the process uses now.
+    """
+
+    def __init__(self, name: str) -> None:
+        self._standard = name
+        super().__init__()
+
+    @property  # type: ignore[override]
+    def stream(self) -> TextIO:
+        return getattr(sys, self._standard)  # type: ignore[no-any-return]
+
+    @stream.setter
+    def stream(self, value: TextIO) -> None:
+        """Ignored: the stream is always the current standard one."""
+
+
 def setup_logging(
     log_dir: Path, *, level: int = logging.INFO, stream: TextIO | None = None
 ) -> logging.Logger:
@@ -33,7 +55,7 @@ def setup_logging(
         Level of the "comove" logger. APScheduler's own messages are kept at WARNING and above
         (its tracebacks of failed runs go to the same places).
     stream : TextIO, optional
-        Where the console copy goes; defaults to `sys.stderr` at call time.
+        Where the console copy goes; by default `sys.stderr` as it is at each line.
 
     Returns
     -------
@@ -43,7 +65,8 @@ def setup_logging(
     """
     log_dir.mkdir(parents=True, exist_ok=True)
     formatter = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
-    console = logging.StreamHandler(stream if stream is not None else sys.stderr)
+    console: logging.Handler = (logging.StreamHandler(stream) if stream is not None
+                                else _CurrentStream("stderr"))
     logfile = RotatingFileHandler(
         log_dir / LOG_FILE, maxBytes=LOG_MAX_BYTES, backupCount=LOG_BACKUPS, encoding="utf-8"
     )
@@ -84,7 +107,8 @@ def console_logging(stream: TextIO | None = None, *,
     comove = logging.getLogger("comove")
     for old in [h for h in comove.handlers if getattr(h, _OUR_HANDLER, False)]:
         comove.removeHandler(old)
-    handler = logging.StreamHandler(stream if stream is not None else sys.stdout)
+    handler: logging.Handler = (logging.StreamHandler(stream) if stream is not None
+                                else _CurrentStream("stdout"))
     handler.setFormatter(logging.Formatter("%(message)s"))
     setattr(handler, _OUR_HANDLER, True)
     comove.addHandler(handler)

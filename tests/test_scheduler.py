@@ -737,3 +737,30 @@ def test_failing_on_start_stops_the_scheduler_is_raised_and_restores_signal_hand
     assert len(seen) == 1 and seen[0] is not None
     assert seen[0] == next_fire_times(schedule, seen[0], count=1)[0]
     assert [job.id for job in _stored_jobs(f"sqlite:///{tmp_path / 'jobs.sqlite'}")] == [JOB_ID]
+
+
+def test_console_lines_follow_the_current_stdout_after_the_old_one_is_closed(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """A handler made while stdout was a capture keeps writing after that capture closed."""
+    import io
+    import logging
+
+    from monitor.logs import console_logging
+
+    first, second = io.StringIO(), io.StringIO()
+    monkeypatch.setattr(sys, "stdout", first)
+    logger = console_logging()
+    first.close()
+    monkeypatch.setattr(sys, "stdout", second)
+    errors = io.StringIO()
+    monkeypatch.setattr(sys, "stderr", errors)
+    try:
+        logger.info("after the swap")
+    finally:
+        for handler in list(logger.handlers):
+            logger.removeHandler(handler)
+        logger.propagate = True
+        logger.setLevel(logging.NOTSET)
+    assert second.getvalue() == "after the swap\n"
+    assert "Logging error" not in errors.getvalue()

@@ -153,7 +153,10 @@ def test_kullback_leibler_matches_the_general_normal_formula() -> None:
 @pytest.mark.slow
 def test_the_stored_default_boundary_is_what_the_calibration_finds() -> None:
     for (rate, baseline, horizon, change), stored in seq.KNOWN_BOUNDARIES.items():
-        assert seq.calibrate(rate, baseline, horizon, change).boundary == stored
+        # Equal to the last few bits: the engine's summation order (gappy tiles, clipping)
+        # may move the final digit of the simulated statistic, nothing more.
+        assert seq.calibrate(rate, baseline, horizon, change).boundary == pytest.approx(
+            stored, rel=1e-12)
 
 
 @pytest.mark.slow
