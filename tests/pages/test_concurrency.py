@@ -88,8 +88,13 @@ def test_an_idle_connection_is_closed_and_does_not_hold_a_worker(site: Path) -> 
 
 
 def test_a_client_leaving_mid_answer_is_a_debug_line_not_a_traceback(
-    site: Path, capfd: pytest.CaptureFixture[str], caplog: pytest.LogCaptureFixture
+    site: Path, capfd: pytest.CaptureFixture[str], caplog: pytest.LogCaptureFixture,
+    monkeypatch: pytest.MonkeyPatch
 ) -> None:
+    # Only pytest's capture: the command line may have left its own handlers on "comove".
+    comove = logging.getLogger("comove")
+    monkeypatch.setattr(comove, "handlers", [])
+    monkeypatch.setattr(comove, "propagate", True)
     caplog.set_level(logging.DEBUG, logger="comove.pages")
     with _serving(site) as (host, port, _):
         for _ in range(5):
@@ -109,7 +114,7 @@ def test_a_client_leaving_mid_answer_is_a_debug_line_not_a_traceback(
 
 
 def test_a_second_pages_build_waits_for_the_first_instead_of_writing_under_it(
-    tmp_path: Path, caplog: pytest.LogCaptureFixture
+    tmp_path: Path, caplog: pytest.LogCaptureFixture, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     from monitor.pages import build_site
     from monitor.pages.write import MANIFEST_NAME, build_lock
@@ -117,6 +122,9 @@ def test_a_second_pages_build_waits_for_the_first_instead_of_writing_under_it(
 
     folder = tmp_path / "site"
     folder.mkdir()
+    comove = logging.getLogger("comove")
+    monkeypatch.setattr(comove, "handlers", [])
+    monkeypatch.setattr(comove, "propagate", True)
     caplog.set_level(logging.INFO, logger="comove.pages")
     finished = threading.Event()
     ctx = made_up_context()

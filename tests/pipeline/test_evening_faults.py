@@ -5,6 +5,7 @@ it missed when it starts, and `run --once` says what went wrong in its exit code
 from __future__ import annotations
 
 import datetime as dt
+import logging
 import os
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -35,6 +36,22 @@ time = "18:30"
 """
 HISTORY_END = dt.date(2023, 12, 15)
 WEEK = [dt.date(2023, 12, d) for d in (18, 19, 20, 21, 22)]
+
+
+@pytest.fixture(autouse=True)
+def _comove_logger_restored() -> Iterator[None]:
+    """`main` and `run_daily_command` attach handlers to the "comove" logger bound to this
+    test's streams; put the logger back so later tests do not write to closed streams."""
+    logger = logging.getLogger("comove")
+    saved = (list(logger.handlers), logger.level, logger.propagate)
+    yield
+    for handler in logger.handlers[:]:
+        if handler not in saved[0]:
+            logger.removeHandler(handler)
+            handler.close()
+    logger.handlers[:] = saved[0]
+    logger.setLevel(saved[1])
+    logger.propagate = saved[2]
 
 
 class FlakyRelay(RecordingRelay):
