@@ -18,6 +18,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, get_args
+from urllib.parse import urlsplit
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from monitor._typing import ReturnKind, SmtpSecurity
@@ -324,6 +325,33 @@ class DigestSettings:
     )
 
 
+def _web_address(value: Any) -> str | None:
+    if value == "":
+        return None
+    parts = urlsplit(value)
+    if (parts.scheme in ("http", "https") and parts.netloc and not parts.query
+            and not parts.fragment and not any(c.isspace() for c in value)):
+        return None
+    return "an http:// or https:// address without query or fragment (or empty)"
+
+
+@dataclass(frozen=True)
+class PagesSettings:
+    """[pages]: the history pages, as readers of the digest reach them."""
+
+    base_url: str = setting(
+        "", "Address where the built history pages are published (http:// or https://, "
+        "e.g. https://risk.halden.example/comove/); the digest then links every alert to its "
+        "pair's page there. Empty: the digest carries no links.", check=_web_address,
+    )
+
+    @property
+    def site_url(self) -> str:
+        """`base_url` ending in "/" (pages' paths are joined to it), or ""."""
+        return self.base_url if not self.base_url or self.base_url.endswith("/") \
+            else self.base_url + "/"
+
+
 @dataclass(frozen=True)
 class RuleSettings:
     """[[rules]] and [schedule]: validated by their own modules (monitor.rules declares each
@@ -348,6 +376,7 @@ SECTIONS: dict[str, Section] = {
     "correlation": Section(CorrelationSettings),
     "rules": Section(RuleSettings, array=True, raw=True),
     "digest": Section(DigestSettings),
+    "pages": Section(PagesSettings),
     "schedule": Section(RuleSettings, raw=True),
 }
 """Every section comove reads. Later features register theirs with `register_section`."""
@@ -399,6 +428,10 @@ class Settings:
     @property
     def digest(self) -> DigestSettings:
         return self.sections["digest"]
+
+    @property
+    def pages(self) -> PagesSettings:
+        return self.sections["pages"]
 
     @property
     def inbox(self) -> Path:

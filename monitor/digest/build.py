@@ -40,6 +40,7 @@ from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_d
 from monitor.engine.drivers import measure_drivers
 from monitor.engine.group_average import group_average
 from monitor.engine.strength import describe
+from monitor.pages.paths import alert_anchor, pair_page_path, target_page_path
 from monitor.rules import Rule
 from monitor.rules.targets import GroupTargets, PairTargets, pair_symbols
 from monitor.templating import SCREENFUL
@@ -96,6 +97,8 @@ class DigestInputs:
     data_issues: Sequence[DataIssueView] = ()
     attention: str = ""
     data_through: dt.date | None = None
+    pages_url: str = ""
+    """`[pages] base_url` ending in "/": each alert then links to its page there."""
     cards: int = SCREENFUL
     """New alerts shown in full, with their chart and drivers (the strongest first)."""
     feed: FeedFacts | None = None
@@ -193,6 +196,7 @@ def build_context(inputs: DigestInputs) -> DigestContext:
         data_feed=None if inputs.feed is None else build_feed(
             inputs.as_of, inputs.feed, data_alerts, inputs.names, inputs.run_dates,
             inputs.generated_at),
+        pages_url=inputs.pages_url,
     )
 
 
@@ -329,7 +333,24 @@ def _alert_view(facts: AlertFacts, bucket: str, rule: Rule | None, inputs: Diges
         reminder=facts.reminded_today,
         groups=_alert_groups(a_text, b_text, rule, inputs.groups),
         method_note=(rule.method_note() or "") if rule is not None else "",
+        page=_page_of(facts, b_text, rule),
     )
+
+
+def _page_of(facts: AlertFacts, b_text: str, rule: Rule | None) -> str:
+    """Site-relative address of the alert's row on the history pages (page and anchor),
+    the way `monitor.pages` names them; "" for an alert no page shows."""
+    a_text = facts.target.partition("/")[0]
+    if b_text:
+        page = pair_page_path(a_text, b_text)
+    elif facts.rule_kind == "group-average" or isinstance(getattr(rule, "targets", None),
+                                                          GroupTargets):
+        page = target_page_path("group", a_text)
+    elif a_text:
+        page = target_page_path("instrument", a_text)
+    else:
+        return ""
+    return f"{page}#{alert_anchor(facts.id)}"
 
 
 def _alert_groups(a_text: str, b_text: str, rule: Rule | None,

@@ -171,6 +171,9 @@ class AlertView:
     method_note : str
         One sentence from the rule (`Rule.method_note`): which variance and which
         false-alarm setting stand behind the alert; "" for rules on the desk's own levels.
+    page : str
+        Site-relative address of the alert on the history pages ("pairs/...html#alert-7");
+        with `DigestContext.pages_url` it makes the alert's link. "" when none.
     """
 
     id: int | str
@@ -204,6 +207,7 @@ class AlertView:
     groups: Sequence[str] = ()
     method_note: str = ""
     drivers_measure: str = ""
+    page: str = ""
 
     def __post_init__(self) -> None:
         if self.severity not in SEVERITY_RANK:

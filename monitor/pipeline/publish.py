@@ -265,6 +265,7 @@ def digest_context(store: Store, settings: Settings, as_of: dt.date,
         group_average_days=c.group_average_days,
         history_days=c.history_days, data_issues=issues, attention=attention,
         data_through=panel.index[-1].date(), feed=feed, run_dates=run_dates,
+        pages_url=settings.pages.site_url,
     )
     return build_context(inputs)
 

@@ -7,7 +7,8 @@
  * data-groups, data-search), so the pages work opened straight from disk (file://) as well
  * as served. A filter can be given in the address: index.html?q=KLV&state=open or
  * index.html#rule=R&opened=2026-03-05 (the part after # wins); changing the form writes it
- * back after the #. The busy-day summaries link to such addresses.
+ * back after the #. The busy-day summaries link to such addresses. (3) A "Copy" button
+ * beside each acknowledge command of a pair's page copies it to the clipboard.
  */
 (function () {
   "use strict";
@@ -207,7 +208,49 @@
     fromAddress();
   }
 
+  function copyText(text) {
+    // The clipboard API needs a secure context (https, localhost); opened from disk or
+    // over plain http elsewhere, fall back to selecting the text and the copy command.
+    if (navigator.clipboard && window.isSecureContext) {
+      return navigator.clipboard.writeText(text);
+    }
+    var area = document.createElement("textarea");
+    area.value = text;
+    area.setAttribute("readonly", "");
+    area.style.position = "absolute";
+    area.style.left = "-9999px";
+    document.body.appendChild(area);
+    area.select();
+    var done = false;
+    try {
+      done = document.execCommand("copy");
+    } catch (error) {
+      done = false;
+    }
+    document.body.removeChild(area);
+    return done ? Promise.resolve() : Promise.reject(new Error("copy refused"));
+  }
+
+  function setUpCopy(button) {
+    // A copy button beside a command: shown only when this script runs (the command
+    // itself is plain text in the page, selectable by hand).
+    var source = document.getElementById(button.getAttribute("data-copy"));
+    if (!source) {
+      return;
+    }
+    button.addEventListener("click", function () {
+      copyText(source.textContent).then(function () {
+        button.textContent = "Copied";
+        button.setAttribute("data-copied", "yes");
+      }, function () {
+        button.textContent = "Select and copy by hand";
+      });
+    });
+    button.hidden = false;
+  }
+
   function start() {
+    Array.prototype.forEach.call(document.querySelectorAll("button.copy"), setUpCopy);
     Array.prototype.forEach.call(document.querySelectorAll("table.sortable"), makeSortable);
     Array.prototype.forEach.call(document.querySelectorAll("form.filter"), setUpFilter);
   }
