@@ -14,8 +14,11 @@ and every test here runs against that site too.
 from __future__ import annotations
 
 import os
+import re
 import threading
+import xml.etree.ElementTree as ET
 from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -256,3 +259,86 @@ def test_index_opened_from_disk_filters_and_sorts_too(built_site: BuiltSite, tab
     page.locator("#alert-table thead th", has_text="Peak").locator("button").click()
     assert _row_ids(page, visible_only=False) != every
     assert tab.errors == []
+
+
+# --- charts, links and the acknowledge command ----------------------------------------
+
+_DATE_LABEL = re.compile(r"\d{4}|[A-Z][a-z]{2}( \d\d| \d{4})?")
+
+
+def test_every_link_and_chart_of_the_pair_pages_resolves(
+    built_site: BuiltSite, site_url: str, tab: Tab
+) -> None:
+    """Each pair page's links answer 200 (with the anchor they name on the page they
+    reach), its charts load, and each chart carries date labels from the shared axis."""
+    page = tab.page
+    pair_pages = sorted((built_site.folder / "pairs").glob("*.html"))
+    assert pair_pages
+    checked: set[str] = set()
+    charts = 0
+    for path in pair_pages[:4]:
+        page.goto(site_url + path.relative_to(built_site.folder).as_posix())
+        page.wait_for_function(
+            "() => { const images = [...document.querySelectorAll('section.measure img')];"
+            " return images.every(i => i.complete && i.naturalWidth > 0); }"
+        )
+        for href in page.eval_on_selector_all("a[href]", "as => as.map(a => a.href)"):
+            if not href.startswith(site_url) or href in checked:
+                continue
+            checked.add(href)
+            address, _, fragment = href.partition("#")
+            response = page.request.get(address)
+            assert response.status == 200, href
+            if fragment and "=" not in fragment:  # "#rule=..." is a filter, not an anchor
+                assert f'id="{fragment}"' in response.text(), href
+        for source in page.eval_on_selector_all("section.measure img", "is => is.map(i => i.src)"):
+            svg = page.request.get(source)
+            assert svg.status == 200 and svg.headers["content-type"].startswith("image/svg")
+            texts = [e.text or "" for e in ET.fromstring(svg.body()).iter()
+                     if e.tag.endswith("text")]
+            assert sum(bool(_DATE_LABEL.fullmatch(t)) for t in texts) >= 2, texts
+            charts += 1
+    assert checked and charts
+    assert tab.errors == []
+
+
+@contextmanager
+def _served(folder: Path) -> Iterator[str]:
+    server = make_server(folder)
+    thread = threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.05},
+                              daemon=True)
+    thread.start()
+    try:
+        yield server_url(server)
+    finally:
+        server.shutdown()
+        server.server_close()
+        thread.join(timeout=5)
+
+
+def test_copy_button_puts_the_exact_ack_command_on_the_clipboard(
+    browser: Any, tmp_path: Path
+) -> None:
+    ctx = made_up_context()
+    waiting = [a for a in ctx.alerts if a.state == "open" and not a.acknowledged_by]
+    assert waiting, "the made-up desk has an open alert nobody acknowledged"
+    build_site(ctx, tmp_path / "site")
+    pages = [p for p in (tmp_path / "site").rglob("*.html") if "ack-command" in p.read_text()]
+    assert pages
+    with _served(tmp_path / "site") as url:
+        context = browser.new_context(permissions=["clipboard-read", "clipboard-write"])
+        try:
+            page = context.new_page()
+            page.goto(url + pages[0].relative_to(tmp_path / "site").as_posix())
+            code = page.locator("code.ack-command").first
+            command = code.inner_text()
+            assert command.startswith("comove ack ") and command.endswith('--by "$USER"')
+            button = page.locator("button.copy").first
+            assert button.is_visible()  # shown by site.js
+            button.click()
+            page.wait_for_function("() => document.querySelector('button.copy')"
+                                   ".dataset.copied === 'yes'")
+            assert page.evaluate("navigator.clipboard.readText()") == command
+            assert button.inner_text() == "Copied"
+        finally:
+            context.close()
