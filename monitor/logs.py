@@ -20,7 +20,7 @@ LOG_BACKUPS = 5
 _OUR_HANDLER = "_comove_handler"
 
 
-class _CurrentStream(logging.StreamHandler):  # type: ignore[type-arg]
+class _CurrentStream(logging.StreamHandler):  # type: ignore[type-arg, unused-ignore]
     """A console handler that writes to `sys.stdout` or `sys.stderr` as it is at each line.
 
     A plain StreamHandler keeps the stream it was given, so a handler made while the
@@ -33,9 +33,9 @@ class _CurrentStream(logging.StreamHandler):  # type: ignore[type-arg]
         self._standard = name
         super().__init__()
 
-    @property  # type: ignore[override]
+    @property  # type: ignore[override, unused-ignore]
     def stream(self) -> TextIO:
-        return getattr(sys, self._standard)  # type: ignore[no-any-return]
+        return getattr(sys, self._standard)  # type: ignore[no-any-return, unused-ignore]
 
     @stream.setter
     def stream(self, value: TextIO) -> None:
