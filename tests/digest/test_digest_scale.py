@@ -128,3 +128,27 @@ def test_largest_changes_by_slices_equal_the_whole(monkeypatch: pytest.MonkeyPat
     assert len(whole) == 10
     assert [(m.pair, m.value_now, m.value_before) for m in sliced] == [
         (m.pair, m.value_now, m.value_before) for m in whole]
+
+
+def test_calendar_losses_by_groups_and_slices_equal_the_direct_count(
+    monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from monitor.data import quality
+
+    rng = np.random.default_rng(8)
+    returns = rng.normal(0, 0.01, (80, 14))
+    returns[rng.random((80, 14)) < 0.05] = np.nan  # scattered missing days
+    returns[:, 10:] = returns[:, [0]] * np.array([1.0, 2.0, 3.0, 4.0])  # one calendar
+    returns[:30, 13] = np.nan  # a late starter
+    returns[:, 12] = np.nan  # no returns at all
+    first_col, second_col = np.triu_indices(14, k=1)
+    pairs = np.column_stack([first_col, second_col])
+    present = ~np.isnan(returns)
+    # The direct count on every pair at once (the definition in calendar_losses' docstring).
+    expected = quality._window_losses(present, pairs, 21)
+    monkeypatch.setattr(quality, "LOSSES_SLICE", 5)
+    lost, first = quality.calendar_losses(returns, pairs, 21)
+    np.testing.assert_array_equal(lost, expected[0])
+    np.testing.assert_array_equal(first, expected[1])
+    same = [k for k, (i, j) in enumerate(pairs.tolist()) if {i, j} <= {0, 10, 11}]
+    assert len(same) == 3 and not lost[same].any() and (first[same] >= 0).all()
