@@ -126,8 +126,12 @@ def test_largest_changes_by_slices_equal_the_whole(monkeypatch: pytest.MonkeyPat
     monkeypatch.setattr(build, "MOVERS_SLICE", 7)  # 276 pairs in 40 slices
     sliced = build_context(inputs).movers
     assert len(whole) == 10
-    assert [(m.pair, m.value_now, m.value_before) for m in sliced] == [
-        (m.pair, m.value_now, m.value_before) for m in whole]
+    # Same pairs in the same order; the values agree to rounding (a slice may take the
+    # engine's pairwise path where the whole list takes the matrix path).
+    assert [m.pair for m in sliced] == [m.pair for m in whole]
+    for got, want in zip(sliced, whole, strict=True):
+        assert got.value_now == pytest.approx(want.value_now, abs=1e-12)
+        assert got.value_before == pytest.approx(want.value_before, abs=1e-12)
 
 
 def test_calendar_losses_by_groups_and_slices_equal_the_direct_count(
