@@ -33,6 +33,7 @@ from monitor.data.returns import DEFAULT_MAX_GAP, closes_to_returns
 from monitor.engine import DEFAULT_LEVEL, Measure, fisher_band, parse_measure, stream
 from monitor.engine.bands import check_level
 from monitor.engine.pairdates import stream_on_pair_dates
+from monitor.engine.regression import regression_band
 from monitor.errors import ConfigError, EngineInputError, SpecError
 from monitor.rules.registry import build_rules
 
@@ -316,13 +317,20 @@ def correlations(
     value = np.empty((days, len(labels)))
     count = np.empty((days, len(labels)))
     stale = np.empty((days, len(labels)), dtype=bool)
+    r = np.full((days, len(labels)), np.nan)
+    ratio = np.full((days, len(labels)), np.nan)
     if len(labels):
         results = stream_on_pair_dates(values, spec, index, start=first, stop=stop,
                                        level=confidence)
         for k, day in enumerate(results):
             value[k], count[k], stale[k] = day.value, day.n, day.stale
+            if day.r is not None and day.ratio is not None:
+                r[k], ratio[k] = day.r, day.ratio
     # One band over the whole table: the same function the engine's day results use.
-    low, high = fisher_band(value, count, confidence)
+    if spec.output == "r":
+        low, high = fisher_band(value, count, confidence)
+    else:
+        low, high = regression_band(spec, value, r, ratio, count, confidence)
     return pd.DataFrame({
         "date": np.repeat(returns.index[first:stop].to_numpy(), len(labels)),
         "pair": np.tile(np.array(labels, dtype=object), days),

@@ -481,8 +481,9 @@ def _series_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("a", metavar="A", help="first instrument")
     parser.add_argument("b", metavar="B", help="second instrument")
     parser.add_argument("--measure", action="append", metavar="SPEC",
-                        help="e.g. rolling:63, ewma:hl=21, ewma:lambda=0.94,mean=zero, rank:63 "
-                             "(repeatable; default: every measure of [correlation] measures)")
+                        help="e.g. rolling:63, ewma:hl=21, ewma:lambda=0.94,mean=zero, rank:63, "
+                             "beta:60 (hedge ratio), r2:60 (repeatable; default: every "
+                             "measure of [correlation] measures)")
     parser.add_argument("--start", type=_date, metavar="DATE", help="first date printed")
     parser.add_argument("--end", type=_date, metavar="DATE",
                         help="last date printed (later closes are not read)")

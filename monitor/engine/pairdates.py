@@ -39,6 +39,7 @@ from monitor._typing import Returns2D
 from monitor.engine.bands import DEFAULT_LEVEL, check_level
 from monitor.engine.layout import BoolArray, FloatArray, IntArray, sorted_unique
 from monitor.engine.rank import average_ranks
+from monitor.engine.regression import regression_values, side_variances
 from monitor.engine.scaling import standardise
 from monitor.engine.spec import Measure, as_measure
 from monitor.engine.stream import DayResult, as_returns, stream
@@ -249,9 +250,11 @@ class _SetStream:
     """One pair set's engine results, stepped along the union's rows."""
 
     def __init__(self, data: Returns2D, spec: Measure, part: PairSet, start: int, stop: int,
-                 level: float, chunk: int | None) -> None:
+                 level: float, chunk: int | None, regression: bool = False) -> None:
         self.part = part
         size = len(part.members)
+        self.ratio: FloatArray = np.full(size, np.nan)
+        self.variances: Returns2D | None = None
         self.value: FloatArray = np.full(size, np.nan)
         self.n: FloatArray = np.zeros(size)
         self.stale: BoolArray = np.zeros(size, dtype=bool)
@@ -267,6 +270,8 @@ class _SetStream:
         if self.next < self.stop:
             self.block = data[np.ix_(part.rows[:self.stop], part.columns)]
             self.constant = constant_sides(self.block, spec)
+            if regression:
+                self.variances = side_variances(self.block, spec)
             size_c = len(part.columns)
             if part.dense:
                 self.flat = part.local[:, 0] * size_c + part.local[:, 1]
@@ -293,6 +298,10 @@ class _SetStream:
                 n = np.take(np.ravel(day.n), self.flat)
                 stale = np.take(np.ravel(day.stale), self.flat)
             self.value, self.n, self.stale = self._exact_stale(self.next, value, n, stale)
+            if self.variances is not None:
+                var = self.variances[self.next]
+                _, self.ratio = regression_values(
+                    self.value, var[self.part.local[:, 0]], var[self.part.local[:, 1]], self.spec)
             self.next += 1
 
     def _exact_stale(self, k: int, value: FloatArray, n: FloatArray, stale: BoolArray
@@ -360,21 +369,32 @@ def stream_on_pair_dates(
 def _walk(matrix: Returns2D, spec: Measure, index: IntArray, start: int, stop: int,
           level: float, chunk: int | None) -> Iterator[DayResult]:
     data = own_standardise(matrix) if spec.scale == "vol" else matrix
-    plain = _plain(spec)
-    parts = [_SetStream(data, plain, part, start, stop, level, chunk)
+    plain = _plain(spec.correlation)
+    regression = spec.output != "r"
+    parts = [_SetStream(data, plain, part, start, stop, level, chunk, regression)
              for part in pair_sets(matrix, index)]
     size = len(index)
     for t in range(start, stop):
         value = np.full(size, np.nan)
         n = np.zeros(size)
         stale = np.zeros(size, dtype=bool)
+        ratio = np.full(size, np.nan)
         for part in parts:
             part.advance(t)
             members = part.part.members
             value[members], n[members], stale[members] = part.value, part.n, part.stale
-        for array in (value, n, stale):
+            if regression:
+                ratio[members] = part.ratio
+        if not regression:
+            for array in (value, n, stale):
+                array.flags.writeable = False
+            yield DayResult(t, value, n, stale, level)
+            continue
+        r = value
+        value, ratio = regression_values(r, np.ones(size), ratio * ratio, spec)
+        for array in (value, n, stale, r, ratio):
             array.flags.writeable = False
-        yield DayResult(t, value, n, stale, level)
+        yield DayResult(t, value, n, stale, level, measure=spec, r=r, ratio=ratio)
 
 
 class OwnHistory:

@@ -17,6 +17,16 @@ The EWMA default minimum is ``round(H)`` but at least 2, capped at the largest e
 count an EWMA can reach, ``floor((1 + L) / (1 - L))`` (Kish 1965 limit), so that the
 default never makes every value NaN.
 
+Regression forms (pair A/B: the second instrument's returns on the first's, with a
+constant)::
+
+    beta:W[,min=M]                       OLS slope cov(A, B) / var(A) over the trailing W
+    beta:hl=H|lambda=L[,mean=..][,min=M] the same with EWMA weights
+    r2:W[,min=M]  r2:hl=H|...            R squared of that regression (r squared)
+
+They are computed from the Pearson measure of the same window or weights
+(:attr:`Measure.output` says which number is reported) and do not take ``scale=``.
+
 ``scale=vol`` (default ``none``) computes the measure on the returns standardised by their
 own lagged EWMA volatility (:func:`monitor.engine.scaling.standardise`) instead of the plain
 returns; the statistical rules read it. A standardised return needs at least 20 returns in
@@ -26,6 +36,7 @@ text carries ``,scale=vol`` last.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Literal
@@ -35,11 +46,13 @@ from monitor.errors import EngineInputError, SpecError
 MeasureKind = Literal["rolling", "rank", "ewma"]
 MeanMode = Literal["weighted", "zero"]
 Scale = Literal["none", "vol"]
+Output = Literal["r", "beta", "r2"]
 
 MIN_WINDOW = 3
 """Shortest window a rolling or rank measure accepts."""
 
 _KINDS: tuple[MeasureKind, ...] = ("rolling", "rank", "ewma")
+_REGRESSION: tuple[Output, ...] = ("beta", "r2")
 _WINDOW_OPTIONS = frozenset({"min", "scale"})
 _EWMA_OPTIONS = frozenset({"hl", "lambda", "mean", "min", "scale"})
 _SCALES: tuple[Scale, ...] = ("none", "vol")
@@ -89,6 +102,10 @@ class Measure:
         Which of the two the spec gave, so that :attr:`text` spells it back the same way.
     scale : {"none", "vol"}
         ``vol``: the measure is computed on volatility-standardised returns.
+    output : {"r", "beta", "r2"}
+        The number reported: the correlation (``r``), the OLS slope of the second
+        instrument's returns on the first's (``beta``) or its R squared (``r2``), all from
+        the same window (``kind`` rolling) or weights (``kind`` ewma).
     """
 
     kind: MeasureKind
@@ -99,10 +116,22 @@ class Measure:
     mean: MeanMode | None = None
     spelled: Literal["hl", "lambda"] | None = field(default=None, repr=False)
     scale: Scale = "none"
+    output: Output = "r"
 
     @property
     def text(self) -> str:
         """Canonical spec; ``parse_measure(m.text) == m``."""
+        text = self._pearson_text()
+        if self.output == "r":
+            return text
+        return f"{self.output}:{text.partition(':')[2]}"
+
+    @property
+    def correlation(self) -> Measure:
+        """The Pearson measure this one is computed from (itself when ``output`` is r)."""
+        return self if self.output == "r" else dataclasses.replace(self, output="r")
+
+    def _pearson_text(self) -> str:
         if self.kind != "ewma":
             parts = [f"{self.kind}:{self.window}"]
             if self.min_count != self.window:
@@ -268,13 +297,29 @@ def parse_measure(text: str) -> Measure:
     kind_word = kind_raw.strip()
     if not sep:
         raise _fail(text, "expected kind:parameters, as in rolling:63 or ewma:hl=21")
-    if kind_word not in _KINDS:
-        raise _fail(text, f"unknown kind {kind_word!r} (expected one of {', '.join(_KINDS)})")
     items = rest.split(",")
+    if kind_word in _REGRESSION:
+        return _parse_regression(text, kind_word, items)
+    if kind_word not in _KINDS:
+        known = ", ".join(_KINDS + _REGRESSION)
+        raise _fail(text, f"unknown kind {kind_word!r} (expected one of {known})")
     if kind_word == "ewma":
         return _parse_ewma(text, items)
     kind: MeasureKind = "rolling" if kind_word == "rolling" else "rank"
     return _parse_window(text, kind, items)
+
+
+def _parse_regression(text: str, word: str, items: list[str]) -> Measure:
+    """``beta:...`` / ``r2:...``: a rolling window or EWMA weights, without ``scale=``."""
+    output: Output = "beta" if word == "beta" else "r2"
+    if any(item.partition("=")[0].strip() == "scale" for item in items):
+        raise _fail(text, f"{word} does not take scale= (it is computed on the returns)")
+    first = items[0].partition("=")[0].strip()
+    if first in ("hl", "lambda"):
+        base = _parse_ewma(text, items)
+    else:
+        base = _parse_window(text, "rolling", items)
+    return dataclasses.replace(base, output=output)
 
 
 def window_problem(measure: Measure, max_window: int) -> str | None:

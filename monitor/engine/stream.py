@@ -67,6 +67,12 @@ class DayResult:
         True where the count suffices but one side did not move (zero variance).
     level : float
         Confidence level of :attr:`low` / :attr:`high`.
+    measure : Measure or None
+        Set for a ``beta`` / ``r2`` measure (``value`` is then the slope or R squared).
+    r : float array or None
+        The correlation a ``beta`` / ``r2`` value comes from.
+    ratio : float array or None
+        ``sd(B) / sd(A)`` over the same window (``beta`` / ``r2``).
     """
 
     t: int
@@ -74,14 +80,24 @@ class DayResult:
     n: FloatArray
     stale: BoolArray
     level: float = DEFAULT_LEVEL
+    measure: Measure | None = None
+    r: FloatArray | None = None
+    ratio: FloatArray | None = None
 
     @cached_property
     def band(self) -> tuple[FloatArray, FloatArray]:
         """Fisher z band ``(low, high)`` at :attr:`level`; NaN where ``n <= 3``.
 
-        Computed on first use: a backfill that does not read it does not pay for it.
+        Computed on first use: a backfill that does not read it does not pay for it. A
+        ``beta`` / ``r2`` value has the band of :func:`monitor.engine.regression.regression_band`.
         """
-        low, high = fisher_band(self.value, self.n, self.level)
+        if self.measure is not None and self.r is not None and self.ratio is not None:
+            from monitor.engine.regression import regression_band
+
+            low, high = regression_band(self.measure, self.value, self.r, self.ratio,
+                                        self.n, self.level)
+        else:
+            low, high = fisher_band(self.value, self.n, self.level)
         low.flags.writeable = False
         high.flags.writeable = False
         return low, high
@@ -278,6 +294,10 @@ def stream(
     """
     matrix = as_returns(returns)
     spec = as_measure(measure)
+    if spec.output != "r":
+        raise EngineInputError(
+            f"measure {spec.text}: beta and r2 measures are computed on each pair's own "
+            "dates; use monitor.engine.stream_on_pair_dates")
     start, stop = _day_range(matrix.shape[0], start, stop)
     level = check_level(level)
     matrix = _measured_returns(matrix, spec, stop)
