@@ -17,6 +17,7 @@ from monitor.renamed import OLD_RULE_KINDS, old_name_hint
 from monitor.rules.base import SEVERITIES, Rule
 from monitor.rules.cusum import CusumRule
 from monitor.rules.group_average import GroupAverageRule
+from monitor.rules.hedge import HedgeRule
 from monitor.rules.jump import JumpRule
 from monitor.rules.level import LevelRule
 from monitor.rules.params import Param, TableReader, suggestion
@@ -27,7 +28,7 @@ from monitor.rules.targets import IntArray, Universe
 
 RULE_KINDS: dict[str, type[Rule]] = {
     rule.kind: rule for rule in (LevelRule, ShiftRule, JumpRule, SignRule, GroupAverageRule,
-                                  StaleRule, CusumRule)
+                                  StaleRule, CusumRule, HedgeRule)
 }
 """Config word -> rule class."""
 
