@@ -13,7 +13,8 @@ EMPTY = "-"
 """What a table shows for a number that is not there (never 'None' or 'nan')."""
 
 _VALUE_UNIT = {"level": "corr", "basket": "corr", "group-average": "corr", "sign": "corr",
-               "shift": "corr", "jump": "corr", "cusum": "corr", "stale": "days"}
+               "shift": "corr", "jump": "corr", "cusum": "corr", "stale": "days",
+               "hedge": "ratio"}
 """The unit of an alert's value and peak, by rule kind."""
 
 _THRESHOLD_UNIT = {"level": "corr", "basket": "corr", "group-average": "corr", "sign": "sign",
@@ -47,6 +48,8 @@ def with_unit(unit: str, number: float | None) -> str:
         return f"evidence {number:.2f}"
     if unit == "sign":
         return "sign change"
+    if unit == "ratio":
+        return f"ratio {number:+.3f}"
     return f"{number:g}"
 
 

@@ -81,3 +81,10 @@ def test_bad_config_is_named(keys: dict[str, object], message: str) -> None:
     returns = _returns(np.ones(DAYS), np.full(DAYS, 0.002))
     with pytest.raises(ConfigError, match=message):
         _events(returns, **keys)
+
+
+def test_alert_value_reads_as_a_ratio() -> None:
+    from monitor.alerts.units import threshold_text, value_text
+
+    assert value_text("hedge", 1.3172) == "ratio +1.317"
+    assert threshold_text("hedge", 1.25) == "1.25"

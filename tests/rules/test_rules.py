@@ -204,7 +204,7 @@ def test_missing_kind_lists_the_known_kinds() -> None:
     message = error_of({"name": "t"})
     assert message == (
         "rules[0] (t).kind: missing required key "
-        "(one of cusum, group-average, jump, level, shift, sign, stale)"
+        "(one of cusum, group-average, hedge, jump, level, shift, sign, stale)"
     )
 
 
@@ -450,7 +450,7 @@ def test_each_kind_reports_its_own_bad_settings(table: dict[str, object], expect
 def test_every_kind_documents_each_parameter() -> None:
     documented = rule_parameters()
     assert set(documented) == set(RULE_KINDS) == {
-        "level", "shift", "jump", "sign", "group-average", "stale", "cusum"
+        "level", "shift", "jump", "sign", "group-average", "stale", "cusum", "hedge"
     }
     for kind, params in documented.items():
         names = [param.name for param in params]
