@@ -169,6 +169,14 @@ class SourcesSettings:
         "Folder of CSV files (.csv or .csv.gz) the daily run collects; relative to the "
         "settings file's folder.",
     )
+    skip_bad: bool = setting(
+        False,
+        "Daily inbox: write a file's good rows and skip its bad lines instead of refusing "
+        "the whole file. Each skipped line is named (file:line, field, value) in "
+        "processed/<file>.problems.txt, in the log and in the digest's Data feed block, "
+        "and `comove run --once` exits 3.",
+        kind=bool,
+    )
     allow_new_symbols: bool = setting(
         False,
         "Accept closes for symbols not listed under [[instruments]] (they are added with "

@@ -431,7 +431,8 @@ def run_daily_command(store: Store, settings: Settings, *, once: bool, as_of: dt
 
 
 EXIT_DATA = 3
-"""`comove run --once`: the run finished, but a file was rejected, a day had no closes (the
+"""`comove run --once`: the run finished, but a file was rejected (or had lines skipped
+under `[sources] skip_bad`), a day had no closes (the
 data-feed alert) or a critical alert opened on the day run."""
 EXIT_EMAIL = 4
 """`comove run --once`: a digest could not be sent, or may have been sent (the connection
@@ -447,7 +448,8 @@ def once_exit_code(reports: Sequence[DailyReport]) -> int:
                 for r in reports)
     if email:
         return EXIT_EMAIL
-    data = any(r.feed_problem or (r.collected is not None and r.collected.rejected)
+    data = any(r.feed_problem
+               or (r.collected is not None and (r.collected.rejected or r.collected.skipped))
                or (r.evaluation is not None and r.as_of in r.evaluation.critical_opened)
                for r in reports)
     return EXIT_DATA if data else 0

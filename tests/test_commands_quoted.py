@@ -6,13 +6,16 @@ with it must be what the argument parser accepts."""
 from __future__ import annotations
 
 import argparse
+import functools
+import importlib
 import re
 import shlex
 from pathlib import Path
+from unittest import mock
 
 import pytest
 
-from monitor.cli import build_parser
+from monitor.cli import BENCHES, build_parser
 
 REPO = Path(__file__).resolve().parents[1]
 QUOTED = re.compile(r"`comove( [^`]*)?`")
@@ -46,6 +49,27 @@ def _options(parser: argparse.ArgumentParser) -> set[str]:
     return {option for action in parser._actions for option in action.option_strings}
 
 
+class _Parsed(Exception):
+    pass
+
+
+@functools.cache
+def bench_options(what: str) -> frozenset[str]:
+    """The options one benchmark's own parser accepts (`comove bench WHAT --option`): its
+    `main` builds the parser, which is caught as it is asked to parse."""
+    seen: list[argparse.ArgumentParser] = []
+
+    def caught(self: argparse.ArgumentParser, *args: object, **kwargs: object) -> None:
+        seen.append(self)
+        raise _Parsed
+
+    module = importlib.import_module(BENCHES[what])
+    with mock.patch.object(argparse.ArgumentParser, "parse_args", caught):
+        with pytest.raises(_Parsed):
+            module.main([])
+    return frozenset(_options(seen[0]))
+
+
 def problems_of(quote: str, parser: argparse.ArgumentParser) -> list[str]:
     """What in one quoted command line the parser would not accept (empty: all of it)."""
     words = shlex.split(quote)[1:]
@@ -61,6 +85,8 @@ def problems_of(quote: str, parser: argparse.ArgumentParser) -> list[str]:
         return [f"no command {first!r}"]
     child = commands[first]
     options = _options(child)
+    if first == "bench" and len(words) > 1 and words[1] in BENCHES:
+        options |= bench_options(words[1])
     problems = [f"{first} has no option {word.split('=')[0]}" for word in words[1:]
                 if word.startswith("--") and word.split("=")[0] not in options]
     choices = [a for a in child._actions if not a.option_strings and a.choices]
@@ -86,6 +112,10 @@ def test_the_check_itself_catches_a_command_an_option_and_an_action_that_do_not_
     assert problems_of("comove pages publish", parser)[0].startswith(
         "pages has no action 'publish'")
     assert problems_of("comove bench ingest|engine|backfill|digest|pages", parser) == []
+    # A benchmark's own options are read from its own parser, and still checked.
+    assert problems_of("comove bench backfill --gaps", parser) == []
+    assert problems_of("comove bench backfill --gapz", parser) == [
+        "bench has no option --gapz"]
     assert problems_of("comove digest --send --resend", parser) == []
     assert problems_of("comove --help", parser) == []
 

@@ -32,7 +32,8 @@ REFUSED_WINDOW = dt.timedelta(hours=24)
 
 @dataclass(frozen=True)
 class RefusedFile:
-    """One closes file the inbox refused (nothing from it was written).
+    """One closes file the inbox refused (nothing from it was written), or one whose bad
+    lines it skipped (the rest written).
 
     Attributes
     ----------
@@ -45,7 +46,10 @@ class RefusedFile:
     more : int
         Problems not shown here (they are in the problems file).
     report : str
-        Name of the problems file beside it in ``rejected/``.
+        Name of the problems file beside it in ``rejected/`` (``processed/`` when written).
+    written : bool
+        The file's good rows were written and only the lines named were skipped
+        (``[sources] skip_bad``); False: the whole file was refused.
     """
 
     name: str
@@ -53,6 +57,7 @@ class RefusedFile:
     problems: Sequence[str] = ()
     more: int = 0
     report: str = ""
+    written: bool = False
 
     def __post_init__(self) -> None:
         tuple_fields(self, "problems")

@@ -35,6 +35,8 @@ LOG = logging.getLogger("comove.daily")
 class CollectReport:
     accepted: list[IngestReport] = field(default_factory=list)
     rejected: list[tuple[Path, str]] = field(default_factory=list)
+    skipped: list[tuple[Path, int]] = field(default_factory=list)
+    """Accepted files whose bad lines were skipped (`[sources] skip_bad`), with the count."""
 
 
 def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = None,
@@ -55,7 +57,8 @@ def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = N
     files = inbox_files(inbox)
     for path in files:
         try:
-            result = ingest_file(store, settings, path, today=today, now=now)
+            result = ingest_file(store, settings, path, today=today, now=now,
+                                 skip_bad=settings.sources.skip_bad)
         except StoreError:
             raise
         except Exception as exc:
@@ -72,7 +75,17 @@ def collect_inbox(store: Store, settings: Settings, *, today: dt.date | None = N
                 "\n".join(lines) + "\n", encoding="utf-8")
             report.rejected.append((target, lines[0]))
             continue
-        _move(path, inbox / "processed")
+        target = _move(path, inbox / "processed")
+        if result.problems:
+            # `[sources] skip_bad`: the good rows are in; every skipped line is said out loud.
+            count = len(result.problems)
+            verdict = (f"{path.name}: {count} line(s) skipped, the other "
+                       f"{result.rows_accepted} row(s) written")
+            (target.parent / f"{target.name}.problems.txt").write_text(
+                "\n".join([verdict, *bounded(result.problems, PROBLEMS_FILE_LINES)]) + "\n",
+                encoding="utf-8")
+            LOG.warning("%s (first: %s)", verdict, result.problems[0])
+            report.skipped.append((target, count))
         if result.notes:
             # An empty close is no close, not an error; the gap is still said out loud.
             LOG.warning("%s: %d empty close(s) read as no close (first: %s)", path.name,
@@ -268,6 +281,8 @@ def _daily_counts(report: DailyReport) -> dict[str, object]:
     if report.collected is not None:
         counts["files_accepted"] = len(report.collected.accepted)
         counts["files_rejected"] = len(report.collected.rejected)
+        if report.collected.skipped:
+            counts["lines_skipped"] = sum(n for _, n in report.collected.skipped)
         counts["closes_new"] = sum(r.closes_new for r in report.collected.accepted)
     if report.evaluation is not None:
         counts.update({f"evaluation_{k}": v for k, v in report.evaluation.counts().items()})

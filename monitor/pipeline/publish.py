@@ -160,14 +160,15 @@ def _retracted_issues(store: Store, as_of: dt.date) -> list[Any]:
 def _refused_files(settings: Settings, now: dt.datetime) -> list[Any]:
     """Closes files the inbox refused in the 24 hours before `now`, from the problems
     reports beside them in ``rejected/`` (first line: the verdict; then one problem per
-    line, naming file, line, field and value)."""
+    line, naming file, line, field and value), and accepted files whose bad lines were
+    skipped (``[sources] skip_bad``: their reports sit in ``processed/``)."""
     from monitor.digest.feed import REFUSED_PROBLEMS_SHOWN, REFUSED_WINDOW, RefusedFile
 
-    folder = settings.inbox / "rejected"
-    if not folder.is_dir():
-        return []
     refused = []
-    for report in folder.glob("*.problems.txt"):
+    reports = [(report, folder == "processed")
+               for folder in ("rejected", "processed") if (settings.inbox / folder).is_dir()
+               for report in (settings.inbox / folder).glob("*.problems.txt")]
+    for report, written in reports:
         at = dt.datetime.fromtimestamp(report.stat().st_mtime, dt.UTC)
         if at < now - REFUSED_WINDOW:
             continue  # (a file refused by this very run is later than `now`: it is listed)
@@ -181,7 +182,8 @@ def _refused_files(settings: Settings, now: dt.datetime) -> list[Any]:
         more += max(0, len(problems) - REFUSED_PROBLEMS_SHOWN)
         refused.append(RefusedFile(
             name=report.name.removesuffix(".problems.txt"), refused_at=at,
-            problems=problems[:REFUSED_PROBLEMS_SHOWN], more=more, report=report.name))
+            problems=problems[:REFUSED_PROBLEMS_SHOWN], more=more, report=report.name,
+            written=written))
     return sorted(refused, key=lambda f: (f.refused_at, f.name))
 
 

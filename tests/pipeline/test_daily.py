@@ -330,3 +330,50 @@ def test_no_data_feed_alert_on_a_day_the_markets_are_shut(
     assert monday.feed_problem.startswith("no new closes for 2027-01-04")
     assert [a.opened_on for a in _feed_alerts(store)] == [dt.date(2027, 1, 4)]
     store.dispose()
+
+
+def test_inbox_skip_bad_writes_the_good_rows_and_names_every_skipped_line(
+    tmp_path: Path, write_settings: Callable[..., Settings], closes: pd.DataFrame,
+    relay: RecordingRelay,
+) -> None:
+    """`[sources] skip_bad = true`: a file with one bad line is not refused whole; its good
+    rows are stored, the bad line is named (file:line) in processed/<file>.problems.txt and
+    in the digest's Data feed block, and the run counts as a data problem (exit code 3)."""
+    from monitor.scheduler import EXIT_DATA, once_exit_code
+
+    settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}",
+                              INSTRUMENTS + RULES + SCHEDULE + _digest(relay.port)
+                              + "\n[sources]\nskip_bad = true\n")
+    store = init_store(settings)
+    history = tmp_path / "history.csv"
+    closes.loc[: pd.Timestamp(HISTORY_END)].to_csv(history, date_format="%Y-%m-%d")
+    ingest_file(store, settings, history, today=HISTORY_END)
+    day = LATER_DAYS[0]
+    path = _drop(settings, closes, day)
+    path.write_text(path.read_text() + f"{day},KLV2,minus one\n")
+    bad_line = len(path.read_text().splitlines())
+    try:
+        report = run_daily(store, settings, day, environ={}, send=False)
+        assert report.collected is not None
+        assert report.collected.rejected == []
+        assert [(p.name, n) for p, n in report.collected.skipped] == [(path.name, 1)]
+        assert once_exit_code([report]) == EXIT_DATA
+        from monitor.pipeline.store import read_closes
+        stored = read_closes(store)
+        row = closes.loc[pd.Timestamp(day)]
+        assert stored.loc[pd.Timestamp(day)].dropna().to_dict() == row.dropna().to_dict()
+        problems = (settings.inbox / "processed" / f"{path.name}.problems.txt").read_text()
+        assert problems.startswith(f"{path.name}: 1 line(s) skipped, the other ")
+        assert f"{path.name}:{bad_line}:" in problems
+        assert report.digest is not None
+        text = (report.digest.folder / "digest.txt").read_text(encoding="utf-8")
+        feed = text.split("DATA FEED", 1)[1].split("NEW ALERTS", 1)[0]
+        assert "Lines skipped in the last 24 hours (the rest of each file was written):" in feed
+        assert "Files refused" not in feed
+        assert f"{path.name}:{bad_line}:" in feed
+        html = BeautifulSoup((report.digest.folder / "digest.html").read_text(
+            encoding="utf-8"), "html.parser")
+        assert [d["data-file"] for d in html.select("#data-feed div.skipped")] == [path.name]
+        assert html.select("#data-feed div.refused") == []
+    finally:
+        store.dispose()
