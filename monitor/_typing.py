@@ -18,4 +18,5 @@ Counts = npt.NDArray[np.float64]
 
 ReturnKind = Literal["log", "simple"]
 SmtpSecurity = Literal["starttls", "tls", "none"]
+ComputeEngine = Literal["local", "dask"]
 Severity = Literal["info", "warning", "critical"]

@@ -21,7 +21,7 @@ from typing import Any, get_args
 from urllib.parse import urlsplit
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from monitor._typing import ReturnKind, SmtpSecurity
+from monitor._typing import ComputeEngine, ReturnKind, SmtpSecurity
 from monitor.config_tables import section_problems, suggest_key, summarise_problems, type_name
 from monitor.errors import ConfigError
 from monitor.symbols import symbol_problem
@@ -360,6 +360,36 @@ class PagesSettings:
             else self.base_url + "/"
 
 
+def _scheduler(value: Any) -> str | None:
+    text = str(value)
+    if text == "local" or re.match(r"^(tcp|tls)://[^\s/]+:\d+$", text):
+        return None
+    return '"local" or a scheduler address such as "tcp://host:8786"'
+
+
+@dataclass(frozen=True)
+class ComputeSettings:
+    """[compute]: where the tiles of the pair matrix are computed in a backfill."""
+
+    engine: ComputeEngine = setting(
+        "local", "local (every tile in this process) or dask (tiles as tasks on a Dask "
+        "cluster; needs the `dask` extra).", choices=get_args(ComputeEngine))
+    scheduler: str = setting(
+        "local", "With engine = \"dask\": \"local\" (start a cluster of worker processes "
+        "on this machine) or the address of a running scheduler (tcp://host:8786).",
+        check=_scheduler)
+    workers: int = setting(2, "Worker processes of a local cluster.", kind=int,
+                           check=_at_least(1))
+    threads_per_worker: int = setting(1, "Threads of each worker of a local cluster.",
+                                      kind=int, check=_at_least(1))
+    tile_size: int = setting(
+        512, "Instruments per side of a tile (block I x block J of the pair matrix): one "
+        "task per tile.", kind=int, check=_at_least(2))
+    connect_seconds: float = setting(
+        10.0, "How long to wait for the scheduler before the run stops with an error.",
+        kind=(int, float), check=_positive)
+
+
 @dataclass(frozen=True)
 class RuleSettings:
     """[[rules]] and [schedule]: validated by their own modules (monitor.rules declares each
@@ -386,6 +416,7 @@ SECTIONS: dict[str, Section] = {
     "digest": Section(DigestSettings),
     "pages": Section(PagesSettings),
     "schedule": Section(RuleSettings, raw=True),
+    "compute": Section(ComputeSettings),
 }
 """Every section comove reads. Later features register theirs with `register_section`."""
 
@@ -440,6 +471,11 @@ class Settings:
     @property
     def pages(self) -> PagesSettings:
         return self.sections["pages"]
+
+    @property
+    def compute(self) -> ComputeSettings:
+        found = self.sections.get("compute")
+        return found if found is not None else ComputeSettings()
 
     @property
     def inbox(self) -> Path:

@@ -318,6 +318,10 @@ class AlertBook:
         book._pending = {name: dict(saved) for name, saved in snapshot["rules"].items()}
         return book
 
+    def active_targets(self, rule: Rule) -> IntArray:
+        """Positions of `rule`'s targets with a streak or an open alert, sorted."""
+        return self._state(rule).active.copy()
+
     # --- the daily step ---------------------------------------------------------------
 
     def step(

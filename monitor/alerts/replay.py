@@ -31,7 +31,7 @@ import numpy.typing as npt
 
 from monitor.alerts.book import AlertBook, AlertEvent
 from monitor.engine.pairdates import OwnHistory, stream_on_pair_dates
-from monitor.rules import DayInputs, MeasureDay, PairLayout, Rule
+from monitor.rules import Condition, DayInputs, MeasureDay, PairLayout, Rule
 from monitor.rules.registry import lags_needed, measures_needed, pairs_needed
 
 BoolArray = npt.NDArray[np.bool_]
@@ -158,26 +158,26 @@ def _days(streams: Mapping[str, Iterator[Any]]) -> Iterator[dict[str, Any]]:
         yield day
 
 
-def replay(
+RemoteConditions = Callable[[Rule, int], Condition]
+"""A rule's condition on row t computed elsewhere (the tiles of a distributed backfill)."""
+
+
+def day_inputs(
     returns: np.ndarray,
     dates: Sequence[dt.date],
     plan: Plan,
-    book: AlertBook,
     *,
-    from_t: int = 0,
-    stop_t: int | None = None,
+    from_t: int,
+    stop_t: int,
     days_without_close: np.ndarray | None = None,
     days_unchanged: np.ndarray | None = None,
-    mutes: Sequence[Mute] = (),
-    acknowledged: AckLookup | None = None,
-) -> Iterator[DayEvents]:
-    """Step every rule of `plan` over rows `from_t .. stop_t-1` of `returns` (T, N).
-
-    `book` must hold the state after row `from_t - 1` (a new book for `from_t` = 0).
-    `acknowledged(rule, date)` returns the mask of the rule's targets whose open alert is
-    acknowledged on that date, or None for none. Yields one DayEvents per row.
-    """
-    stop_t = returns.shape[0] if stop_t is None else stop_t
+) -> Iterator[tuple[int, DayInputs | None]]:
+    """Rows ``from_t .. stop_t-1`` with the :class:`DayInputs` the rules of `plan` read
+    (None when `plan` has no rules: nothing is computed)."""
+    if not plan.rules:
+        for t in range(from_t, stop_t):
+            yield t, None
+        return
     warm_t = max(0, from_t - plan.max_lag)
     # Every pair on its own dates (monitor.engine.pairdates): the values `series` shows.
     streams = {
@@ -211,21 +211,56 @@ def replay(
                 past = history[text]
                 lagged[(text, lag)] = (past[-1 - lag] if len(past) > lag
                                        else MeasureDay.missing(len(plan.pairs)))
-            date = dates[t]
-            inputs = DayInputs(
-                date=date, measures=today, layout=plan.layout, lagged=lagged,
+            yield t, DayInputs(
+                date=dates[t], measures=today, layout=plan.layout, lagged=lagged,
                 days_without_close=None if days_without_close is None else days_without_close[t],
                 days_unchanged=None if days_unchanged is None else days_unchanged[t],
                 scaled_history=None if own is None else own.instruments(t, rows),
                 scaled_pairs=None if own is None else functools.partial(own.pairs, t, rows),
             )
-            out = DayEvents(t, date)
-            for rule in plan.rules:
+
+
+def replay(
+    returns: np.ndarray,
+    dates: Sequence[dt.date],
+    plan: Plan,
+    book: AlertBook,
+    *,
+    from_t: int = 0,
+    stop_t: int | None = None,
+    days_without_close: np.ndarray | None = None,
+    days_unchanged: np.ndarray | None = None,
+    mutes: Sequence[Mute] = (),
+    acknowledged: AckLookup | None = None,
+    remote: tuple[frozenset[str], RemoteConditions] | None = None,
+) -> Iterator[DayEvents]:
+    """Step every rule of `plan` over rows `from_t .. stop_t-1` of `returns` (T, N).
+
+    `book` must hold the state after row `from_t - 1` (a new book for `from_t` = 0).
+    `acknowledged(rule, date)` returns the mask of the rule's targets whose open alert is
+    acknowledged on that date, or None for none. `remote` names the rules whose conditions
+    were computed elsewhere and the lookup that gives them (a distributed backfill); the
+    other rules are evaluated here. Yields one DayEvents per row.
+    """
+    stop_t = returns.shape[0] if stop_t is None else stop_t
+    names, lookup = remote if remote is not None else (frozenset(), None)
+    local = plan if not names else make_plan(
+        [rule for rule in plan.rules if rule.name not in names], plan.symbols, level=plan.level)
+    for t, inputs in day_inputs(returns, dates, local, from_t=from_t, stop_t=stop_t,
+                                days_without_close=days_without_close,
+                                days_unchanged=days_unchanged):
+        date = dates[t]
+        out = DayEvents(t, date)
+        for rule in plan.rules:
+            if lookup is not None and rule.name in names:
+                condition = lookup(rule, t)
+            else:
+                assert inputs is not None
                 condition = rule.evaluate(inputs)
-                muted = _muted(rule, date, mutes)
-                acked = acknowledged(rule, date) if acknowledged is not None else None
-                out.events.extend(book.step(rule, condition, date, acknowledged=acked, muted=muted))
-            yield out
+            muted = _muted(rule, date, mutes)
+            acked = acknowledged(rule, date) if acknowledged is not None else None
+            out.events.extend(book.step(rule, condition, date, acknowledged=acked, muted=muted))
+        yield out
 
 
 def _muted(rule: Rule, date: dt.date, mutes: Sequence[Mute]) -> BoolArray | None:

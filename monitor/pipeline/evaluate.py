@@ -150,12 +150,27 @@ def _inputs(store: Store, settings: Settings, symbols: Sequence[str], end: dt.da
     return _Inputs(returns, [d.date() for d in returns.index], without[rows], unchanged[rows])
 
 
-def evaluate_range(
+def evaluate_range(store: Store, settings: Settings, start: dt.date | None,
+                   end: dt.date | None, **options: Any) -> EvaluationReport:
+    """Evaluate the rules on every business day from `start` to `end` and store the alerts
+    (:func:`_evaluate_range` has the options). With ``[compute] engine = "dask"`` the
+    cluster is reached before anything is written: an unreachable scheduler is an error
+    with the store untouched, and the tiles of the pair rules run on it."""
+    if settings.compute.engine != "dask":
+        return _evaluate_range(store, settings, start, end, connected=None, **options)
+    from monitor.pipeline import distributed
+
+    with distributed.client(settings.compute) as connected:
+        return _evaluate_range(store, settings, start, end, connected=connected, **options)
+
+
+def _evaluate_range(
     store: Store,
     settings: Settings,
     start: dt.date | None,
     end: dt.date | None,
     *,
+    connected: Any,
     rule_names: Sequence[str] | None = None,
     kind: str = "backfill",
     progress: Progress | None = None,
@@ -229,11 +244,19 @@ def evaluate_range(
     pending: list[DayEvents] = []
     last_commit = time.monotonic()
     total = stop_t - write_from
+    returns = data.returns.to_numpy()
     try:
+        remote = None
+        if connected is not None:
+            from monitor.pipeline import distributed
+
+            remote = distributed.remote_conditions(
+                connected, returns, dates, plan, book, settings.compute, from_t=from_t,
+                stop_t=stop_t, progress=_tile_progress())
         for day in replay(
-            data.returns.to_numpy(), dates, plan, book, from_t=from_t, stop_t=stop_t,
+            returns, dates, plan, book, from_t=from_t, stop_t=stop_t,
             days_without_close=data.without_close, days_unchanged=data.unchanged,
-            mutes=mutes, acknowledged=acked,
+            mutes=mutes, acknowledged=acked, remote=remote,
         ):
             report.days += 1
             if day.t < write_from:
@@ -265,6 +288,17 @@ def evaluate_range(
     with store.begin() as conn:
         runs_store.finish_run(conn, run_id, status="done", now=clock(), counts=report.counts())
     return report
+
+
+def _tile_progress() -> Callable[[int, int], None]:
+    """Log tiles done / total about every tenth of the way (and the last)."""
+
+    def log(done: int, total: int) -> None:
+        step = max(1, total // 10)
+        if done % step == 0 or done == total:
+            LOG.info("tiles %d/%d", done, total)
+
+    return log
 
 
 def _ack_lookup(book: AlertBook,
