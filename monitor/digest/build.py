@@ -14,7 +14,6 @@ import math
 from bisect import bisect_left, bisect_right
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
-from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -34,6 +33,7 @@ from monitor.digest.context import (
     MoverView,
     _finite,
 )
+from monitor.digest.facts import AlertFacts
 from monitor.digest.feed import FeedFacts, build_feed
 from monitor.digest.order import alert_sort_key
 from monitor.engine import matrix_on_pair_dates, parse_measure, stream_on_pair_dates
@@ -48,28 +48,6 @@ from monitor.templating import SCREENFUL
 MOVERS_SHOWN = 10
 MOVERS_SLICE = 500_000
 """Pairs compared at a time for the largest changes (bounds the memory of a large desk)."""
-
-
-@dataclass(frozen=True)
-class AlertFacts:
-    """One stored alert, as the pipeline read it (see storage.alerts.AlertRow)."""
-
-    id: int
-    rule: str
-    target: str
-    opened_on: dt.date
-    first_breach_on: dt.date
-    state: str
-    cleared_on: dt.date | None
-    severity: str
-    rule_kind: str
-    announced: bool
-    acknowledged_by: str | None = None
-    acknowledged_at: dt.datetime | None = None
-    acknowledged_note: str | None = None
-    reminded_today: bool = False
-    event_today: Mapping[str, Any] | None = None
-    """The event of the digest's day (opened / continuing / cleared), if any."""
 
 
 @dataclass(frozen=True)

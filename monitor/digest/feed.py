@@ -16,12 +16,9 @@ import datetime as dt
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
 
+from monitor.digest.facts import AlertFacts
 from monitor.templating import tuple_fields
-
-if TYPE_CHECKING:
-    from monitor.digest.build import AlertFacts
 
 REFUSED_PROBLEMS_SHOWN = 5
 """Problems of one refused file printed in the digest; the rest are in its .problems.txt."""
