@@ -54,6 +54,8 @@ DIFFERENCE_TARGET = 1e-10
 ONE_DAY_TARGET_S = 1.0
 ONE_DAY_GAPPY_TARGET_S = 0.3
 MEMORY_TARGET_BYTES = 1.5 * 2**30
+REGRESSION_TARGET = 2.0
+"""A ``beta:`` / ``r2:`` measure takes at most this many times its correlation's time."""
 
 MARKETS = ("XNYS", "XLON", "XETR", "XTKS", "XHKG")
 """Exchanges whose closed days make the gaps (instrument k trades on MARKETS[k % 5])."""
@@ -374,6 +376,36 @@ print(json.dumps({"days": days, "seconds": seconds, "traced_peak_bytes": peak,
 """
 
 
+def _drain_pairs(returns: Returns2D, spec: str) -> int:
+    from monitor.engine import stream_on_pair_dates
+
+    size = returns.shape[1]
+    left, right = np.triu_indices(size, 1)
+    days = 0
+    for _ in stream_on_pair_dates(returns, spec, np.column_stack([left, right])):
+        days += 1
+    return days
+
+
+def regression_speed(columns: int, rows: int, repeat: int) -> list[dict[str, Any]]:
+    """Every pair on its own dates: ``beta:``/``r2:`` against the correlation they come from
+    (returns without gaps: the own-dates path with gaps is the correlation's own cost)."""
+    lines = []
+    for gaps in (False,):
+        returns = desk_returns(rows, columns, gaps=gaps)
+        for base, derived in (("rolling:63", ("beta:63", "r2:63")),
+                              ("ewma:hl=21", ("beta:hl=21", "r2:hl=21"))):
+            base_wall, _, _ = _timed(partial(_drain_pairs, returns, base), repeat)
+            for spec in derived:
+                wall, _, _ = _timed(partial(_drain_pairs, returns, spec), repeat)
+                ratio = wall / base_wall
+                lines.append({"measure": spec, "versus": base, "instruments": columns,
+                              "days": rows, "gaps": gaps, "seconds": wall,
+                              "versus_seconds": base_wall, "ratio": ratio,
+                              "target": REGRESSION_TARGET, "ok": ratio <= REGRESSION_TARGET})
+    return lines
+
+
 def memory_pass(columns: int, rows: int) -> dict[str, Any]:
     """A full streamed pass in a fresh interpreter, so that its peaks are its own."""
     env = dict(os.environ)
@@ -406,6 +438,7 @@ def run(*, json_out: bool = False, quick: bool = False) -> dict[str, Any]:
     versus += versus_pandas(*compared, gaps=True, repeat=repeat)
     daily = daily_run(*daily_size, repeat=repeat)
     least = floor(*compared, repeat=repeat)
+    regression = regression_speed(*compared, repeat=repeat)
     clean_rolling = next(line for line in versus if line["measure"] == "rolling:63")
     least["engine_over_floor"] = clean_rolling["engine_s"] / least["seconds"]
     figures: dict[str, Any] = {
@@ -415,6 +448,7 @@ def run(*, json_out: bool = False, quick: bool = False) -> dict[str, Any]:
         "floor": least,
         "one_day": daily,
         "memory": memory,
+        "regression": regression,
     }
     figures["all_ok"] = bool(
         all(
@@ -423,6 +457,7 @@ def run(*, json_out: bool = False, quick: bool = False) -> dict[str, Any]:
             if line["target_applies"]
         )
         and all(line["ok"] for line in daily)
+        and all(line["ok"] for line in regression)
         and memory["ok"]
     )
     if json_out:
@@ -468,6 +503,16 @@ def _table(figures: dict[str, Any]) -> str:
             f"{line['instruments']:>5} {line['trailing_days']:>5} "
             f"{line['pairs']:>9} {line['seconds']:>8.3f}  "
             f"{_verdict(line['ok'])} (<{line['target_s']} s)"
+        )
+    out.append("")
+    out.append(f"{'all pairs, own dates':<20} {'gaps':>5} {'N':>4} {'T':>5} {'seconds':>8} "
+               f"{'versus':<11} {'seconds':>8} {'ratio':>6}")
+    for line in figures["regression"]:
+        out.append(
+            f"{line['measure']:<20} {'yes' if line['gaps'] else 'no':>5} "
+            f"{line['instruments']:>4} {line['days']:>5} {line['seconds']:>8.3f} "
+            f"{line['versus']:<11} {line['versus_seconds']:>8.3f} {line['ratio']:>6.2f}  "
+            f"{_verdict(line['ok'])} (<={line['target']:.0f}x)"
         )
     memory = figures["memory"]
     out.append("")

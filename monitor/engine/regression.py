@@ -26,15 +26,13 @@ from monitor.engine.bands import fisher_band, normal_quantile
 from monitor.engine.layout import FloatArray
 from monitor.engine.spec import Measure
 
-_ROWS = 256
-"""Window ends computed together by the two-pass rolling variance."""
-
 
 def side_variances(block: Returns2D, measure: Measure) -> FloatArray:
     """(R, C): each column's variance (up to a factor common to every column) over the
     measure's window, or EWMA weights, ending on each row of a block without gaps.
 
-    Rolling: two-pass ``sum (x - mean)^2`` over the trailing ``W`` rows (fewer at the start).
+    Rolling: ``sum x^2 - (sum x)^2 / n`` over the trailing ``W`` rows (fewer at the start),
+    from running sums of the mean-shifted columns.
     EWMA: ``sum w x^2 - (sum w x)^2 / sum w`` with ``w = lambda^age`` (``sum w x^2`` for
     ``mean=zero``), running sums over the rows so far.
     """
@@ -55,15 +53,19 @@ def side_variances(block: Returns2D, measure: Measure) -> FloatArray:
             second = lam * second + x * x
             out[t] = second if not measure.centred else second - first * first / weight
         return np.maximum(out, 0.0)
+    # Each column shifted by its mean (the variance does not change) so that the running
+    # sums stay near the window sums' size: the difference of two running sums then loses
+    # about T / W units in the last place, far below 1e-10 of the variance.
     window = int(measure.window or rows)
-    padded = np.vstack([np.full((window - 1, columns), np.nan), values])
-    for lo in range(0, rows, _ROWS):
-        hi = min(rows, lo + _ROWS)
-        stack = np.lib.stride_tricks.sliding_window_view(padded[lo:hi + window - 1], window,
-                                                         axis=0)  # (hi-lo, C, W)
-        mean = np.nanmean(stack, axis=2, keepdims=True)
-        out[lo:hi] = np.nansum((stack - mean) ** 2, axis=2)
-    return out
+    shifted = values - values.mean(axis=0)
+    first = np.vstack([np.zeros((1, columns)), np.cumsum(shifted, axis=0)])
+    second = np.vstack([np.zeros((1, columns)), np.cumsum(shifted * shifted, axis=0)])
+    end = np.arange(1, rows + 1)
+    begin = np.maximum(end - window, 0)
+    count = (end - begin)[:, None].astype(np.float64)
+    total = first[end] - first[begin]
+    out = (second[end] - second[begin]) - total * total / count
+    return np.maximum(out, 0.0)
 
 
 def regression_values(r: FloatArray, var_a: FloatArray, var_b: FloatArray,

@@ -45,3 +45,7 @@ def test_quick_benchmark_prints_json_with_every_figure(capsys: pytest.CaptureFix
     assert all(line["seconds"] > 0 for line in figures["one_day"])
     assert set(figures["memory"]) >= {"traced_peak_bytes", "max_rss_bytes", "seconds", "ok"}
     assert figures["memory"]["traced_peak_bytes"] > 0
+    assert {line["measure"] for line in figures["regression"]} == {
+        "beta:63", "r2:63", "beta:hl=21", "r2:hl=21"}
+    assert all(line["seconds"] > 0 and line["versus_seconds"] > 0
+               for line in figures["regression"])
