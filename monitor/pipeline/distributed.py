@@ -95,7 +95,9 @@ def remote_conditions(
         for start in (int(tile.rows[0]), int(tile.cols[0])):
             if start not in blocks:
                 block = np.ascontiguousarray(stop_rows[:, start:start + size])
-                blocks[start] = connected.scatter(block, broadcast=False)
+                # on every worker: a worker lost mid-run leaves copies for the retries
+                # (scattered data is not a task Dask could recompute)
+                blocks[start] = connected.scatter(block, broadcast=True)
     futures = [
         connected.submit(tile_conditions, blocks[int(tile.rows[0])], blocks[int(tile.cols[0])],
                          tile, list(dates[:stop_t]), from_t=from_t, stop_t=stop_t,

@@ -215,6 +215,37 @@ def test_local_scheduler_starts_its_own_cluster(desk: Desk) -> None:
     assert _history(dask_store) == _history(local_store)
 
 
+@pytest.mark.slow
+def test_a_worker_killed_mid_run_gives_the_same_alerts(
+        desk: Desk, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The first tile back kills the other worker's process (SIGKILL): Dask reruns its
+    tiles on the worker left and on the one the nanny starts again."""
+    import os
+    import signal
+
+    from monitor.pipeline import evaluate as evaluate_module
+
+    local_store, local_settings = desk("")
+    evaluate_range(local_store, local_settings, None, None)
+    killed: list[int] = []
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=":0") as running:
+        pids = [nanny.pid for nanny in running.workers.values()]
+        real = evaluate_module._tile_progress()
+
+        def progress(done: int, total: int) -> None:
+            if not killed:
+                os.kill(pids[-1], signal.SIGKILL)
+                killed.append(pids[-1])
+            real(done, total)
+
+        monkeypatch.setattr(evaluate_module, "_tile_progress", lambda: progress)
+        dask_store, dask_settings = desk(_compute(running.scheduler_address, tile_size=3))
+        evaluate_range(dask_store, dask_settings, None, None)
+    assert killed
+    assert _history(dask_store) == _history(local_store)
+
+
 def test_unreachable_scheduler_is_one_line_and_writes_nothing(desk: Desk) -> None:
     store, settings = desk(_compute("tcp://127.0.0.1:9"))
     with pytest.raises(ComoveError) as caught:
