@@ -371,7 +371,8 @@ def _walk(matrix: Returns2D, spec: Measure, index: IntArray, start: int, stop: i
     data = own_standardise(matrix) if spec.scale == "vol" else matrix
     plain = _plain(spec.correlation)
     regression = spec.output != "r"
-    parts = [_SetStream(data, plain, part, start, stop, level, chunk, regression)
+    # r2 needs r only; beta also each side's variance (sd(B) / sd(A))
+    parts = [_SetStream(data, plain, part, start, stop, level, chunk, spec.output == "beta")
              for part in pair_sets(matrix, index)]
     size = len(index)
     for t in range(start, stop):
