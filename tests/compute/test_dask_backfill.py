@@ -207,12 +207,18 @@ def test_resumed_dask_backfill_equals_the_local_one(desk: Desk,
 
 
 @pytest.mark.slow
-def test_local_scheduler_starts_its_own_cluster(desk: Desk) -> None:
+def test_local_scheduler_starts_its_own_cluster(desk: Desk,
+                                                caplog: pytest.LogCaptureFixture) -> None:
     local_store, local_settings = desk("")
     evaluate_range(local_store, local_settings, None, dt.date(2023, 8, 1))
     dask_store, dask_settings = desk(_compute("local", tile_size=6))
-    evaluate_range(dask_store, dask_settings, None, dt.date(2023, 8, 1))
+    with caplog.at_level("INFO", logger="comove"):
+        evaluate_range(dask_store, dask_settings, None, dt.date(2023, 8, 1))
     assert _history(dask_store) == _history(local_store)
+    # the log names the cluster it started: its two workers and the dashboard's address
+    line = next(r.getMessage() for r in caplog.records if r.name == "comove.compute"
+                and r.getMessage().startswith("dask scheduler tcp://"))
+    assert ", 2 workers, dashboard http://" in line, line
 
 
 @pytest.mark.slow
