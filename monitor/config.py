@@ -640,7 +640,8 @@ def _raw_section_problems(sections: Mapping[str, Any], base_dir: Path) -> list[s
 
 
 def _window_problems(correlation: CorrelationSettings) -> list[str]:
-    """The [correlation] measures against `max_window` (the rules' are checked with them)."""
+    """The [correlation] measures: correlations (not `beta:` / `r2:`), within `max_window`
+    (the rules' are checked with them)."""
     from monitor.engine import parse_measure, window_problem
     from monitor.errors import SpecError
 
@@ -648,9 +649,16 @@ def _window_problems(correlation: CorrelationSettings) -> list[str]:
     named = [(f"correlation.measures[{i}]", text) for i, text in enumerate(correlation.measures)]
     for key, text in [*named, ("correlation.default_measure", correlation.default_measure)]:
         try:
-            problem = window_problem(parse_measure(text), correlation.max_window)
+            parsed = parse_measure(text)
         except SpecError:
             continue  # reported by the key's own check
+        if parsed.output != "r":
+            # The pages' matrices, group averages and largest changes read these as a
+            # symmetric correlation; a slope of B on A is not one.
+            problems.append(f"{key}: {text!r} is a hedge ratio or R squared, not a "
+                            "correlation; name it in a hedge rule or `comove series --measure`")
+            continue
+        problem = window_problem(parsed, correlation.max_window)
         if problem:
             problems.append(f"{key}: {problem}")
     return problems

@@ -142,8 +142,13 @@ def read_common(reader: TableReader) -> CommonSettings:
     )
 
 
-def read_measure(reader: TableReader, key: str, default_measure: str | None) -> MeasureSpec:
+def read_measure(reader: TableReader, key: str, default_measure: str | None, *,
+                 correlation: bool = True) -> MeasureSpec:
     """Read and check a measure spec key, falling back on the desk's default measure.
+
+    With `correlation` (every kind but `hedge`) the measure must be a correlation: the
+    rule's levels, Fisher z statistics and bands are a correlation's, so a `beta:` or
+    `r2:` spec is refused with the kind that reads it.
 
     Raises
     ------
@@ -160,9 +165,18 @@ def read_measure(reader: TableReader, key: str, default_measure: str | None) -> 
             raise reader.error(key, "missing required key (no default measure is configured)")
         text, origin = default_measure, " (default)"
     try:
-        return _check_measure(text)
+        spec = _check_measure(text)
     except SpecError as exc:
         raise SpecError(f"{reader.where(key)}{origin}: {exc}") from None
+    if correlation:
+        from monitor.engine.spec import parse_measure
+
+        if parse_measure(spec.text).output != "r":
+            raise SpecError(
+                f"{reader.where(key)}{origin}: {spec.text!r} is a hedge ratio or R squared, "
+                "not a correlation: this kind's levels and statistics are a correlation's "
+                "(use it in a kind = \"hedge\" rule or in `comove series --measure`)")
+    return spec
 
 
 @dataclass(frozen=True, eq=False, kw_only=True)

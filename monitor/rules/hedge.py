@@ -67,7 +67,7 @@ class HedgeRule(Rule):
         cls, reader: TableReader, universe: Universe, default_measure: str | None
     ) -> HedgeRule:
         common = read_common(reader)
-        spec = read_measure(reader, "measure", DEFAULT_MEASURE)
+        spec = read_measure(reader, "measure", DEFAULT_MEASURE, correlation=False)
         parsed = parse_measure(spec.text)
         if parsed.output != "beta":
             raise reader.error("measure", f"{spec.text!r} is not a beta: measure "

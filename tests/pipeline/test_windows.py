@@ -110,3 +110,36 @@ def test_the_evening_evaluation_warns_instead_and_goes_on(
     assert any("measure rolling:63 needs 63 returns but the store holds 29" in r.getMessage()
                for r in caplog.records)
     store.dispose()  # type: ignore[attr-defined]
+
+
+@pytest.mark.parametrize(
+    ("section", "message"),
+    [
+        ('[correlation]\nmeasures = ["rolling:63", "beta:63"]\n',
+         "correlation.measures[1]: 'beta:63' is a hedge ratio or R squared, not a correlation"),
+        ('[correlation]\ndefault_measure = "r2:hl=21"\n',
+         "correlation.default_measure: 'r2:hl=21' is a hedge ratio or R squared, not a "
+         "correlation"),
+        (LEVEL_RULE.format(measure="beta:63"),
+         "'beta:63' is a hedge ratio or R squared, not a correlation: this kind's levels"),
+    ],
+)
+def test_a_hedge_ratio_where_a_correlation_is_read_is_refused(
+    tmp_path: Path, write_settings: Callable[..., Settings], section: str, message: str
+) -> None:
+    """A slope of B on A is not symmetric and has no Fisher z: the pages' matrices, group
+    averages, largest changes and the correlation rule kinds cannot read it."""
+    url = f"sqlite:///{tmp_path / 's.sqlite'}"
+    with pytest.raises(ConfigError) as info:
+        write_settings(url, DESK_TOML + section)
+    text = "\n".join([str(info.value), *getattr(info.value, "problems", [])])
+    assert message in text
+
+
+def test_a_hedge_rule_still_takes_its_beta_measure(
+    tmp_path: Path, write_settings: Callable[..., Settings]
+) -> None:
+    url = f"sqlite:///{tmp_path / 's.sqlite'}"
+    settings = write_settings(url, DESK_TOML + '\n[[rules]]\nname = "klv-orma-hedge"\n'
+                              'kind = "hedge"\npairs = ["KLV/ORMA"]\nmeasure = "beta:42"\n')
+    assert [t["kind"] for t in settings.rule_tables] == ["hedge"]
