@@ -724,8 +724,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     quiet, verbose = getattr(args, "quiet", False), getattr(args, "verbose", False)
     if quiet and verbose:
         parser.error("-q and -v cannot be used together")
+    machine = (getattr(args, "format", None) == "json"
+               or "--json" in (getattr(args, "rest", None) or ()))
     console_logging(level=logging.WARNING if quiet else logging.DEBUG if verbose
-                    else logging.INFO)
+                    else logging.INFO, standard="stderr" if machine else "stdout")
     try:
         return int(args.handler(args))
     except (ComoveError, StoreError) as exc:

@@ -94,11 +94,14 @@ def setup_logging(
     return comove
 
 
-def console_logging(stream: TextIO | None = None, *,
-                    level: int = logging.INFO) -> logging.Logger:
-    """Show comove's messages from `level` up as plain lines on `stream` (stdout by default).
+def console_logging(stream: TextIO | None = None, *, level: int = logging.INFO,
+                    standard: str = "stdout") -> logging.Logger:
+    """Show comove's messages from `level` up as plain lines on `stream` (by default the
+    process's `standard` stream, "stdout" or "stderr", as it is at each line).
 
-    The command line passes INFO, WARNING for `-q` and DEBUG for `-v`.
+    The command line passes INFO, WARNING for `-q` and DEBUG for `-v`, and "stderr" when
+    the command's stdout is data for a program (`--format json`, `bench ... --json`), so
+    progress lines never mix into it.
 
     What the shell commands print while they work (ingested files, backfill and demo
     progress, the daily run's summary) goes through the "comove" logger; this is the
@@ -108,7 +111,7 @@ def console_logging(stream: TextIO | None = None, *,
     for old in [h for h in comove.handlers if getattr(h, _OUR_HANDLER, False)]:
         comove.removeHandler(old)
     handler: logging.Handler = (logging.StreamHandler(stream) if stream is not None
-                                else _CurrentStream("stdout"))
+                                else _CurrentStream(standard))
     handler.setFormatter(logging.Formatter("%(message)s"))
     setattr(handler, _OUR_HANDLER, True)
     comove.addHandler(handler)

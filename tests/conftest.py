@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import os
 import uuid
 from collections.abc import Callable, Iterator
@@ -13,6 +14,23 @@ from monitor.config import Settings, load_settings
 
 PG_SERVER = os.environ.get("COMOVE_TEST_PG", "postgresql+psycopg://postgres@127.0.0.1:5432/test")
 UNDER_CI = os.environ.get("CI", "").lower() in ("1", "true", "yes")
+
+
+@pytest.fixture(autouse=True)
+def _comove_logger_as_it_was() -> Iterator[None]:
+    """Put the "comove" logger back after each test: a test that runs the command line
+    installs its console handler, which must not write into the next test's output."""
+    logger = logging.getLogger("comove")
+    handlers, level, propagate = list(logger.handlers), logger.level, logger.propagate
+    yield
+    for handler in list(logger.handlers):
+        if handler not in handlers:
+            logger.removeHandler(handler)
+    for handler in handlers:
+        if handler not in logger.handlers:
+            logger.addHandler(handler)
+    logger.setLevel(level)
+    logger.propagate = propagate
 
 
 def _pg_reachable() -> str | None:

@@ -921,3 +921,16 @@ def test_benchmark_quick_json_reports_its_figures(capsys: pytest.CaptureFixture[
     assert figures["rebuild_unchanged"] == figures["files"]
     assert figures["build_seconds"] > 0 and figures["target_seconds"] == 60.0
     assert figures["within_target"] == (figures["build_seconds"] < 60.0)
+
+
+def test_benchmark_json_from_the_command_line_is_json_alone(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """`comove bench pages --quick --json`: the build's progress lines go to stderr, so
+    stdout is the JSON a program reads, nothing else."""
+    from monitor.cli import main
+
+    assert main(["bench", "pages", "--quick", "--json"]) == 0
+    captured = capsys.readouterr()
+    assert json.loads(captured.out)["pairs"] == 8
+    assert "charts drawn" in captured.err
