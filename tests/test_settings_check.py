@@ -40,7 +40,8 @@ def test_every_problem_is_collected_and_the_message_names_the_first_with_a_count
         "returns.horizon: 0 is not an integer >= 1",
         "schedule.tme: unknown key; did you mean 'time'?",
         "rules[0] (hedge).kind: unknown kind 'jmp' (did you mean 'jump'?); known kinds: "
-        + ", ".join(sorted(["cusum", "group-average", "jump", "level", "shift", "sign", "stale"])),
+        + ", ".join(sorted(["cusum", "group-average", "hedge", "jump", "level", "shift", "sign",
+                            "stale"])),
     ]
     message = str(info.value)
     assert message == f"{problems[0]} (and 3 more: `comove check` lists them all)"

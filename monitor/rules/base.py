@@ -27,7 +27,8 @@ SEVERITIES: tuple[str, ...] = ("info", "warning", "critical")
 
 COMMON_PARAMETERS: tuple[Param, ...] = (
     Param("name", "str", "Unique name (letters, digits, '-', '_', '.').", required=True),
-    Param("kind", "str", "level, shift, jump, sign, group-average, stale or cusum.", required=True),
+    Param("kind", "str", "level, shift, jump, sign, group-average, stale, cusum or hedge.",
+          required=True),
     Param("severity", "str", "How urgent its alerts are.", default="warning", choices=SEVERITIES),
     Param(
         "remind_every",
