@@ -9,95 +9,32 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
-import json
 import os
 import signal
 import sys
 import threading
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import pandas as pd
-
 from monitor import __version__
+from monitor.cli_common import (
+    COMMANDS,
+    add_format_option,
+    command,
+    date_argument,
+    dumps,
+    load,
+    print_frame,
+)
 from monitor.errors import ComoveError, IngestError
 from monitor.logs import console_logging
 from storage import StoreError
 
-Handler = Callable[[argparse.Namespace], int]
-
-
-@dataclass(frozen=True)
-class Command:
-    name: str
-    help: str
-    handler: Handler
-    configure: Callable[[argparse.ArgumentParser], None]
-    needs_config: bool = True
-
-
-COMMANDS: dict[str, Command] = {}
-
-
-def _no_arguments(parser: argparse.ArgumentParser) -> None:
-    return None
-
-
-def command(
-    name: str,
-    help: str,
-    arguments: Callable[[argparse.ArgumentParser], None] = _no_arguments,
-    *,
-    needs_config: bool = True,
-) -> Callable[[Handler], Handler]:
-    """Register the decorated function as the handler of `comove NAME`."""
-
-    def wrap(handler: Handler) -> Handler:
-        COMMANDS[name] = Command(name, help, handler, arguments, needs_config)
-        return handler
-
-    return wrap
-
-
-def _date(text: str) -> dt.date:
-    try:
-        return dt.date.fromisoformat(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a date (YYYY-MM-DD)") from None
-
-
-def add_format_option(parser: argparse.ArgumentParser) -> None:
-    """The output format option shared by every listing command."""
-    parser.add_argument("--format", choices=("table", "csv", "json"), default="table",
-                        help="table for reading (default), csv or json for other tools")
-
-
-def load(args: argparse.Namespace) -> Any:
-    from monitor.config import load_settings
-
-    return load_settings(getattr(args, "config", None))
-
-
-def print_frame(frame: pd.DataFrame, fmt: str = "table") -> None:
-    """Print a frame as an aligned table ('-' for what is missing), CSV or JSON records
-    (monitor.tabular: dates as YYYY-MM-DD, full precision, null for missing)."""
-    from monitor import tabular
-
-    if fmt == "csv":
-        sys.stdout.write(tabular.to_csv(frame))
-    elif fmt == "json":
-        sys.stdout.write(tabular.to_json(frame) + "\n")
-    elif frame.empty:
-        print("(none)")
-    else:
-        plain = tabular.plain_dates(frame)
-        shown = plain.astype(object).where(plain.notna(), "-")
-        print(shown.to_string(index=False))
-
+__all__ = ["COMMANDS", "BENCHES", "ProgressLine", "add_format_option", "build_parser",
+           "command", "dumps", "load", "main", "print_frame"]
 
 # --- init and check ------------------------------------------------------------------------
 
@@ -253,9 +190,9 @@ def _instruments(args: argparse.Namespace) -> int:
 
 
 def _backfill_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--start", type=_date, metavar="DATE",
+    parser.add_argument("--start", type=date_argument, metavar="DATE",
                         help="first business day to evaluate (default: the first with returns)")
-    parser.add_argument("--end", type=_date, metavar="DATE",
+    parser.add_argument("--end", type=date_argument, metavar="DATE",
                         help="last business day to evaluate (default: the last with closes)")
     parser.add_argument("--rule", action="append", metavar="NAME",
                         help="evaluate only this rule (repeatable)")
@@ -342,174 +279,15 @@ def _backfill(args: argparse.Namespace) -> int:
     return 0
 
 
-# --- alerts, ack, mute, series -------------------------------------------------------------
+# --- alerts, ack, mute, series: monitor/cli_review.py ------------------------------------
 
-
-def _alerts_args(parser: argparse.ArgumentParser) -> None:
-    which = parser.add_mutually_exclusive_group()
-    which.add_argument("--open", action="store_true", help="open alerts only (the default)")
-    which.add_argument("--all", action="store_true",
-                       help="open, cleared and retracted alerts (a rerun no longer produces them)")
-    parser.add_argument("--since", type=_date, metavar="DATE",
-                        help="alerts opened, cleared or still open on or after DATE")
-    parser.add_argument("--pair", metavar="A/B", help="alerts of one pair")
-    parser.add_argument("--rule", metavar="NAME", help="alerts of one rule")
-    add_format_option(parser)
-
-
-@command("alerts", "List alerts with state, severity, rule, pair, dates, values and who "
-         "acknowledged them.", _alerts_args)
-def _alerts(args: argparse.Namespace) -> int:
-    from monitor.pipeline import list_alerts, open_settings_store
-
-    settings = load(args)
-    frame = list_alerts(open_settings_store(settings), settings, open_only=not args.all,
-                        since=args.since, pair=args.pair, rule=args.rule)
-    if args.format == "table":
-        from monitor.alerts.units import threshold_text, value_text
-
-        kinds = frame["kind"].tolist()
-        for col in ("value", "peak"):
-            frame[col] = [value_text(k, v) for k, v in zip(kinds, frame[col], strict=True)]
-        frame["threshold"] = [threshold_text(k, v)
-                              for k, v in zip(kinds, frame["threshold"], strict=True)]
-        frame = frame.drop(columns=["kind"])
-    print_frame(frame, args.format)
-    return 0
-
-
-def _ack_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("id", type=int, help="alert id (see comove alerts)")
-    parser.add_argument("--by", required=True, metavar="NAME", help="who acknowledges")
-    parser.add_argument("--note", default="", metavar="TEXT", help="what was decided or seen")
-
-
-@command("ack", "Acknowledge an alert: it stays open but leaves the needs-attention list "
-         "and is no longer reminded.", _ack_args)
-def _ack(args: argparse.Namespace) -> int:
-    from monitor.pipeline import acknowledge, open_settings_store
-
-    settings = load(args)
-    alert = acknowledge(open_settings_store(settings), settings, args.id, by=args.by,
-                        note=args.note)
-    print(f"alert {alert.id} ({alert.rule}, {alert.target}, opened {alert.opened_on}) "
-          f"acknowledged by {alert.acknowledged_by}")
-    return 0
-
-
-def _mute_args(parser: argparse.ArgumentParser) -> None:
-    what = parser.add_mutually_exclusive_group(required=True)
-    what.add_argument("--rule", metavar="NAME", help="mute every alert of this rule")
-    what.add_argument("--pair", metavar="A/B", help="mute this pair (or group or symbol "
-                      "target) under every rule")
-    parser.add_argument("--from", dest="from_on", type=_date, metavar="DATE",
-                        help="first day of the mute (default: today)")
-    parser.add_argument("--until", type=_date, required=True, metavar="DATE",
-                        help="last day of the mute (inclusive)")
-    parser.add_argument("--reason", required=True, metavar="TEXT", help="kept with the mute")
-    parser.add_argument("--allow-past", action="store_true",
-                        help="accept days before today (muting history before a backfill; "
-                             "days already evaluated change only when replayed)")
-
-
-@command("mute", "Mute a rule or a pair until a date: conditions are still recorded, just "
-         "not announced.", _mute_args)
-def _mute(args: argparse.Namespace) -> int:
-    from monitor.pipeline import mute, open_settings_store
-
-    settings = load(args)
-    mute_id = mute(open_settings_store(settings), settings, rule=args.rule, pair=args.pair,
-                   until=args.until, reason=args.reason, from_on=args.from_on,
-                   allow_past=args.allow_past)
-    first = f" from {args.from_on}" if args.from_on else ""
-    print(f"mute {mute_id}: {args.rule or args.pair}{first} until {args.until} "
-          f"(comove unmute {mute_id} lifts it)")
-    if args.allow_past:
-        print("days already evaluated keep what they announced; `comove backfill --force` "
-              "replays them with this mute")
-    return 0
-
-
-def _mutes_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--all", action="store_true",
-                        help="also the mutes that have ended")
-    add_format_option(parser)
-
-
-@command("mutes", "List the mutes (active and coming; --all also the ended ones) with their "
-         "id, rule or target, days and reason.", _mutes_args)
-def _mutes(args: argparse.Namespace) -> int:
-    from monitor.pipeline import list_mutes, open_settings_store
-
-    settings = load(args)
-    frame = list_mutes(open_settings_store(settings), settings, include_ended=args.all)
-    print_frame(frame, args.format)
-    return 0
-
-
-def _unmute_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("id", type=int, help="mute id (see comove mutes)")
-
-
-@command("unmute", "Lift a mute from today on (its past days stay as they were; a mute that "
-         "has not started is removed).", _unmute_args)
-def _unmute(args: argparse.Namespace) -> int:
-    from monitor.pipeline import open_settings_store, unmute
-
-    settings = load(args)
-    print(unmute(open_settings_store(settings), settings, args.id))
-    return 0
-
-
-def _unack_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("id", type=int, help="alert id (see comove alerts)")
-
-
-@command("unack", "Withdraw an alert's acknowledgement: it needs attention again and its "
-         "reminders resume.", _unack_args)
-def _unack(args: argparse.Namespace) -> int:
-    from monitor.pipeline import open_settings_store, unacknowledge
-
-    settings = load(args)
-    alert = unacknowledge(open_settings_store(settings), settings, args.id)
-    print(f"alert {alert.id} ({alert.rule}, {alert.target}, opened {alert.opened_on}) is no "
-          f"longer acknowledged; state {alert.state}")
-    return 0
-
-
-def _series_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("a", metavar="A", help="first instrument")
-    parser.add_argument("b", metavar="B", help="second instrument")
-    parser.add_argument("--measure", action="append", metavar="SPEC",
-                        help="e.g. rolling:63, ewma:hl=21, ewma:lambda=0.94,mean=zero, rank:63, "
-                             "beta:60 (hedge ratio), r2:60 (repeatable; default: every "
-                             "measure of [correlation] measures)")
-    parser.add_argument("--start", type=_date, metavar="DATE", help="first date printed")
-    parser.add_argument("--end", type=_date, metavar="DATE",
-                        help="last date printed (later closes are not read)")
-    add_format_option(parser)
-
-
-@command("series", "Print one pair's measures from the store: date, measure, value, band "
-         "low, band high and n.", _series_args)
-def _series(args: argparse.Namespace) -> int:
-    from monitor.pipeline import open_settings_store, series
-
-    settings = load(args)
-    store = open_settings_store(settings)
-    measures = args.measure or list(settings.correlation.measures)
-    frames = [series(store, settings, args.a, args.b, spec, start=args.start, end=args.end)
-              for spec in measures]
-    frame = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
-    print_frame(frame, args.format)
-    return 0
-
+from monitor import cli_review  # noqa: E402,F401  (registers its commands here, in order)
 
 # --- digest and the daily run ------------------------------------------------------------
 
 
 def _digest_args(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--as-of", type=_date, metavar="DATE",
+    parser.add_argument("--as-of", type=date_argument, metavar="DATE",
                         help="digest date (default: the latest business day with closes)")
     parser.add_argument("--out", type=Path, metavar="DIR",
                         help="write digest.html with its PNGs, digest.txt and digest.eml here")
@@ -564,7 +342,7 @@ def _run_args(parser: argparse.ArgumentParser) -> None:
                              "code 0: done, 3: done with data problems (a file rejected, "
                              "no closes, a critical alert opened), 4: a digest not sent "
                              "or perhaps sent (it stays in the outbox), 1: an error")
-    parser.add_argument("--as-of", type=_date, metavar="DATE",
+    parser.add_argument("--as-of", type=date_argument, metavar="DATE",
                         help="with --once: the as-of date (default: today in the "
                              "schedule's zone)")
     parser.add_argument("--force", action="store_true",
@@ -745,13 +523,3 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"Error: unexpected {type(exc).__name__}: {exc} (set COMOVE_DEBUG=1 for the "
               "traceback)", file=sys.stderr)
         return 1
-
-
-def _json_default(value: Any) -> Any:
-    if isinstance(value, dt.date | dt.datetime):
-        return value.isoformat()
-    raise TypeError(type(value).__name__)
-
-
-def dumps(value: Any) -> str:
-    return json.dumps(value, default=_json_default, indent=1)
