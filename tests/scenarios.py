@@ -68,3 +68,29 @@ def break_scenario() -> Scenario:
     )
 
 
+
+
+def digest_section(port: int) -> str:
+    """A [digest] section sending to a test mail server on `port`, one attempt, no wait."""
+    return (f'\n[digest]\nrecipients = ["risk@halden.example"]\nsender = "comove@halden.example"'
+            f'\nsmtp_host = "127.0.0.1"\nsmtp_port = {port}\nsecurity = "none"\nattempts = 1'
+            '\nbackoff_seconds = 0.01\n')
+
+
+SPIKE_RULE = """
+[[rules]]
+name = "spike-level"
+kind = "level"
+measure = "rolling:21"
+pairs = ["KLV/TEZ10"]
+above = 0.6
+hold = 1
+severity = "warning"
+"""
+"""A level rule on KLV/TEZ10 that a bad tick in both on the same day sets off."""
+
+WEEKDAY_SCHEDULE = """
+[schedule]
+days = ["mon", "tue", "wed", "thu", "fri"]
+time = "18:30"
+"""

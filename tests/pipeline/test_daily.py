@@ -25,7 +25,7 @@ from storage import alerts as alerts_store
 from storage import outbox as outbox_store
 from storage import runs as runs_store
 from tests.conftest import RecordingRelay
-from tests.scenarios import INSTRUMENTS, RULES, break_scenario
+from tests.scenarios import INSTRUMENTS, RULES, break_scenario, digest_section
 
 SCHEDULE = """
 [schedule]
@@ -44,17 +44,13 @@ def closes() -> pd.DataFrame:
     return frame
 
 
-def _digest(port: int) -> str:
-    return (f'\n[digest]\nrecipients = ["risk@halden.example"]\nsender = "comove@halden.example"'
-            f'\nsmtp_host = "127.0.0.1"\nsmtp_port = {port}\nsecurity = "none"\nattempts = 1'
-            '\nbackoff_seconds = 0.01\n')
 
 
 @pytest.fixture
 def desk(tmp_path: Path, write_settings: Callable[..., Settings], closes: pd.DataFrame,
          relay: RecordingRelay) -> Iterator[tuple[Store, Settings]]:
     settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}",
-                              INSTRUMENTS + RULES + SCHEDULE + _digest(relay.port))
+                              INSTRUMENTS + RULES + SCHEDULE + digest_section(relay.port))
     store = init_store(settings)
     history = tmp_path / "history.csv"
     closes.loc[: pd.Timestamp(HISTORY_END)].to_csv(history, date_format="%Y-%m-%d")
@@ -265,7 +261,7 @@ def test_a_killed_run_is_finished_by_the_next_start_with_the_same_result(
     killed = _alert_keys(store)
 
     clean = write_settings(f"sqlite:///{tmp_path / 'clean.sqlite'}",
-                           INSTRUMENTS + RULES + SCHEDULE + _digest(relay.port))
+                           INSTRUMENTS + RULES + SCHEDULE + digest_section(relay.port))
     clean_store = init_store(clean)
     history = tmp_path / "history.csv"
     closes.loc[: pd.Timestamp(day)].to_csv(history, date_format="%Y-%m-%d")
@@ -342,7 +338,7 @@ def test_inbox_skip_bad_writes_the_good_rows_and_names_every_skipped_line(
     from monitor.scheduler import EXIT_DATA, once_exit_code
 
     settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}",
-                              INSTRUMENTS + RULES + SCHEDULE + _digest(relay.port)
+                              INSTRUMENTS + RULES + SCHEDULE + digest_section(relay.port)
                               + "\n[sources]\nskip_bad = true\n")
     store = init_store(settings)
     history = tmp_path / "history.csv"

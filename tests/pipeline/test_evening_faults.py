@@ -27,7 +27,7 @@ from storage import closes as closes_store
 from storage import outbox as outbox_store
 from storage import runs as runs_store
 from tests.conftest import RecordingRelay
-from tests.scenarios import INSTRUMENTS, RULES, break_scenario
+from tests.scenarios import INSTRUMENTS, RULES, break_scenario, digest_section
 
 SCHEDULE = """
 [schedule]
@@ -80,17 +80,13 @@ def closes() -> pd.DataFrame:
     return frame
 
 
-def _digest(port: int) -> str:
-    return (f'\n[digest]\nrecipients = ["risk@halden.example"]\nsender = "comove@halden.example"'
-            f'\nsmtp_host = "127.0.0.1"\nsmtp_port = {port}\nsecurity = "none"\nattempts = 1'
-            '\nbackoff_seconds = 0.01\n')
 
 
 @pytest.fixture
 def desk(tmp_path: Path, write_settings: Callable[..., Settings], closes: pd.DataFrame,
          flaky: FlakyRelay) -> Iterator[tuple[Store, Settings]]:
     settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}",
-                              INSTRUMENTS + RULES + SCHEDULE + _digest(flaky.port))
+                              INSTRUMENTS + RULES + SCHEDULE + digest_section(flaky.port))
     store = init_store(settings)
     history = tmp_path / "history.csv"
     closes.loc[: pd.Timestamp(HISTORY_END)].to_csv(history, date_format="%Y-%m-%d")

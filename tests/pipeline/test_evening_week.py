@@ -23,24 +23,11 @@ from storage import Store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
 from storage import outbox as outbox_store
-from tests.pipeline.test_evening_faults import FlakyRelay, _digest
-from tests.scenarios import INSTRUMENTS
+from tests.pipeline.test_evening_faults import FlakyRelay
+from tests.scenarios import INSTRUMENTS, SPIKE_RULE, WEEKDAY_SCHEDULE, digest_section
 
-RULES = """
-[[rules]]
-name = "spike-level"
-kind = "level"
-measure = "rolling:21"
-pairs = ["KLV/TEZ10"]
-above = 0.6
-hold = 1
-severity = "warning"
-"""
-SCHEDULE = """
-[schedule]
-days = ["mon", "tue", "wed", "thu", "fri"]
-time = "18:30"
-"""
+RULES = SPIKE_RULE
+SCHEDULE = WEEKDAY_SCHEDULE
 DATES = pd.bdate_range("2024-01-02", periods=105)
 WEEK = [d.date() for d in DATES[100:105]]
 SYMBOLS = ["KLV", "DUNQ", "TEZ10"]
@@ -69,7 +56,7 @@ def relay() -> Iterator[FlakyRelay]:
 def desk(tmp_path: Path, write_settings: Callable[..., Settings], closes: pd.DataFrame,
          relay: FlakyRelay) -> Iterator[tuple[Store, Settings]]:
     settings = write_settings(f"sqlite:///{tmp_path / 'store.sqlite'}",
-                              INSTRUMENTS + RULES + SCHEDULE + _digest(relay.port))
+                              INSTRUMENTS + RULES + SCHEDULE + digest_section(relay.port))
     store = init_store(settings)
     history = tmp_path / "history.csv"
     closes.loc[: DATES[99]].to_csv(history, date_format="%Y-%m-%d")

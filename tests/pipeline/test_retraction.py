@@ -18,23 +18,9 @@ from monitor.pipeline import acknowledge, backfill, ingest_file, init_store, run
 from storage import Store
 from storage import alerts as alerts_store
 from storage import closes as closes_store
-from tests.scenarios import INSTRUMENTS
+from tests.scenarios import INSTRUMENTS, SPIKE_RULE, WEEKDAY_SCHEDULE
 
-SPIKE_RULE = """
-[[rules]]
-name = "spike-level"
-kind = "level"
-measure = "rolling:21"
-pairs = ["KLV/TEZ10"]
-above = 0.6
-hold = 1
-severity = "warning"
-"""
-SCHEDULE = """
-[schedule]
-days = ["mon", "tue", "wed", "thu", "fri"]
-time = "18:30"
-"""
+SCHEDULE = WEEKDAY_SCHEDULE
 DATES = pd.bdate_range("2024-01-02", periods=120)
 SPIKE = DATES[100].date()  # a bad tick in KLV and TEZ10 on the same day
 NEXT = DATES[101].date()
