@@ -27,32 +27,14 @@ from monitor.rules.inputs import DayInputs
 from monitor.rules.level import LevelRule
 from storage import Store
 from storage import alerts as alerts_store
+from tests.scenarios import INSTRUMENTS
 
 SYMBOLS = ("KLV", "DUNQ", "TEZ10", "VARO")
 PAIRS = [(a, b) for i, a in enumerate(SYMBOLS) for b in SYMBOLS[i + 1:]]
 MEASURES = ("rolling:63", "ewma:hl=21", "rank:63")
 BREAK_DAY = 330
 
-DESK = """
-[desk]
-name = "Halden Test Desk"
-timezone = "Europe/Berlin"
-
-[[instruments]]
-symbol = "KLV"
-name = "Kelvara Industrial"
-group = "equities"
-
-[[instruments]]
-symbol = "DUNQ"
-name = "Dunquist Machines"
-group = "equities"
-
-[[instruments]]
-symbol = "TEZ10"
-name = "Tezran 10-year bond future"
-group = "rates"
-
+DESK = INSTRUMENTS + """
 [[instruments]]
 symbol = "VARO"
 name = "Varo Harbour Index"
